@@ -1,0 +1,312 @@
+"""The configuration: one set of pydantic models, loaded from TOML with :mod:`tomllib`.
+
+These models are the only definition of the config (DESIGN.md "Config (contract, TOML)").
+Unknown keys are rejected everywhere (``extra="forbid"``) so that a typo is an error, not a
+silently ignored setting. Turning validation errors into sentences is done in one place,
+:mod:`streamcond.errors`.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    Tag,
+    Discriminator,
+    field_validator,
+    model_validator,
+)
+
+NAME_PATTERN = r"^[A-Za-z0-9_-]+$"
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class Station(_Model):
+    name: str = Field("streamcond", pattern=NAME_PATTERN)
+
+
+class Source(_Model):
+    """Where samples come from and how a line becomes a row."""
+
+    kind: Literal["serial", "file"] = "file"
+    # serial (pyserial): a device path or a pyserial URL
+    port: str | None = None
+    baud: int = Field(115200, gt=0)
+    parity: Literal["N", "E", "O", "M", "S"] = "N"
+    bytesize: Literal[5, 6, 7, 8] = 8
+    stopbits: Literal[1, 1.5, 2] = 1
+    max_line_bytes: int = Field(4096, ge=16)
+    # file
+    path: str | None = None
+    # line format
+    format: Literal["csv", "kv", "json"] = "csv"
+    columns: list[Annotated[str, Field(min_length=1)]] | None = None
+    time_column: str | None = None
+    time_scale: float = Field(1.0, gt=0)
+    sample_rate_hz: float | None = Field(None, gt=0)
+    #: A step in sample time larger than this many nominal sample periods is a gap.
+    gap_after_periods: float = Field(3.0, gt=1)
+
+    @field_validator("columns")
+    @classmethod
+    def _unique_columns(cls, v: list[str] | None) -> list[str] | None:
+        if v is not None and len(set(v)) != len(v):
+            raise ValueError("must not name a column twice")
+        return v
+
+    @model_validator(mode="after")
+    def _needs_time(self) -> "Source":
+        if self.kind == "file" and self.time_column is None and self.sample_rate_hz is None:
+            raise ValueError(
+                "source needs time_column (sample time from the data) or sample_rate_hz "
+                "(a fixed rate) for a file source"
+            )
+        if self.kind == "serial" and not self.port:
+            raise ValueError("source.port is required when source.kind is \"serial\"")
+        if self.columns is not None and self.time_column is not None:
+            if self.time_column not in self.columns:
+                raise ValueError(
+                    f"source.time_column {self.time_column!r} is not one of source.columns"
+                )
+        return self
+
+
+# --- prefilters -------------------------------------------------------------------------------
+
+
+class NoFilter(_Model):
+    kind: Literal["none"] = "none"
+
+
+class MovingAverageFilter(_Model):
+    kind: Literal["moving_average"]
+    window: int = Field(ge=1, le=100_000)
+
+
+class MedianFilter(_Model):
+    kind: Literal["median"]
+    window: int = Field(ge=1, le=10_001)
+
+
+class EmaFilter(_Model):
+    kind: Literal["ema"]
+    tau_s: float = Field(gt=0)
+
+
+class LowpassFilter(_Model):
+    kind: Literal["lowpass"]
+    cutoff_hz: float = Field(gt=0)
+    order: int = Field(2, ge=1, le=8)
+
+
+FilterSpec = Annotated[
+    Union[NoFilter, MovingAverageFilter, MedianFilter, EmaFilter, LowpassFilter],
+    Field(discriminator="kind"),
+]
+
+
+# --- band -------------------------------------------------------------------------------------
+
+
+class FixedBand(_Model):
+    """A fixed hysteresis band, given as low/high or as center/width."""
+
+    mode: Literal["fixed"] = "fixed"
+    low: float
+    high: float
+
+    @model_validator(mode="before")
+    @classmethod
+    def _from_center(cls, data: Any) -> Any:
+        if isinstance(data, dict) and ("center" in data or "width" in data):
+            data = dict(data)
+            if "low" in data or "high" in data:
+                raise ValueError("{at} takes either low and high, or center and width, not both")
+            if "center" not in data or "width" not in data:
+                raise ValueError("{at} needs both center and width (or low and high)")
+            c, w = data.pop("center"), data.pop("width")
+            if not isinstance(c, (int, float)) or not isinstance(w, (int, float)):
+                raise ValueError("{at}.center and {at}.width must be numbers")
+            if w <= 0:
+                raise ValueError("{at}.width must be greater than 0")
+            data["low"] = c - w / 2.0
+            data["high"] = c + w / 2.0
+        return data
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "FixedBand":
+        if not (math.isfinite(self.low) and math.isfinite(self.high)):
+            raise ValueError("{at}.low and {at}.high must be finite numbers")
+        if not self.low < self.high:
+            raise ValueError(f"{{at}}.low ({self.low:g}) must be below {{at}}.high ({self.high:g})")
+        return self
+
+    @property
+    def center(self) -> float:
+        return (self.low + self.high) / 2.0
+
+    @property
+    def width(self) -> float:
+        return self.high - self.low
+
+
+class AdaptiveBand(_Model):
+    """A band of width clamp(k·σ̂, min_width, max_width) around ``center``, σ̂ measured live."""
+
+    mode: Literal["adaptive"]
+    center: float
+    k: float = Field(6.0, gt=0)
+    window_s: float = Field(5.0, gt=0)
+    min_width: float = Field(0.0, ge=0)
+    max_width: float | None = Field(None, gt=0)
+    #: Width in force before the first noise estimate (warm-up); default: min_width, or if that
+    #: is 0, no decisions are made until the first estimate.
+    initial_width: float | None = Field(None, gt=0)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "AdaptiveBand":
+        if self.max_width is not None and self.max_width < self.min_width:
+            raise ValueError("{at}.max_width must not be below {at}.min_width")
+        return self
+
+
+def _band_mode(v: Any) -> str:
+    if isinstance(v, dict):
+        return v.get("mode", "fixed")
+    return getattr(v, "mode", "fixed")
+
+
+BandSpec = Annotated[
+    Union[Annotated[FixedBand, Tag("fixed")], Annotated[AdaptiveBand, Tag("adaptive")]],
+    Discriminator(_band_mode),
+]
+
+
+class Dwell(_Model):
+    """Time qualification: how long the signal must stay past a threshold before an edge counts."""
+
+    rise_s: float = Field(0.0, ge=0)
+    fall_s: float = Field(0.0, ge=0)
+
+
+class Channel(_Model):
+    name: str = Field(pattern=NAME_PATTERN)
+    column: str | None = None
+    gain: float = 1.0
+    offset: float = 0.0
+    unit: str = ""
+    invert: bool = False
+    filter: FilterSpec = Field(default_factory=NoFilter)
+    band: BandSpec
+    dwell: Dwell = Field(default_factory=Dwell)
+    compensate_delay: bool = True
+
+    @property
+    def source_column(self) -> str:
+        return self.column if self.column is not None else self.name
+
+    @field_validator("gain")
+    @classmethod
+    def _gain_nonzero(cls, v: float) -> float:
+        if v == 0 or not math.isfinite(v):
+            raise ValueError("must be a finite number other than 0")
+        return v
+
+
+class Stats(_Model):
+    interval_s: float = Field(10.0, gt=0)
+
+
+class Mqtt(_Model):
+    host: str = "127.0.0.1"
+    port: int = Field(1883, ge=1, le=65535)
+    topic_prefix: str | None = None
+    qos: Literal[0, 1, 2] = 1
+    client_id: str | None = None
+    username: str | None = None
+    password_file: str | None = None
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    keepalive_s: int = Field(30, ge=5)
+    spool_path: str = "state/spool.sqlite"
+    spool_max_records: int = Field(1_000_000, ge=100)
+
+
+class Output(_Model):
+    events: str = "-"
+    mqtt: Mqtt | None = None
+
+
+class Config(_Model):
+    station: Station = Field(default_factory=Station)
+    source: Source
+    channel: list[Channel] = Field(min_length=1)
+    stats: Stats = Field(default_factory=Stats)
+    output: Output = Field(default_factory=Output)
+
+    @model_validator(mode="after")
+    def _cross_checks(self) -> "Config":
+        names = [c.name for c in self.channel]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise ValueError(f"channel names must be unique; repeated: {', '.join(dup)}")
+        src = self.source
+        for i, ch in enumerate(self.channel):
+            col = ch.source_column
+            if src.columns is not None and col not in src.columns:
+                raise ValueError(
+                    f"channel[{i}].column {col!r} is not one of source.columns"
+                )
+            if src.time_column is not None and col == src.time_column:
+                raise ValueError(f"channel[{i}] reads the time column {col!r} as a value")
+            f = ch.filter
+            if isinstance(f, LowpassFilter) and src.sample_rate_hz is not None:
+                if f.cutoff_hz >= src.sample_rate_hz / 2:
+                    raise ValueError(
+                        f"channel[{i}].filter.cutoff_hz must be below half of "
+                        f"source.sample_rate_hz ({src.sample_rate_hz / 2:g} Hz)"
+                    )
+        return self
+
+    @property
+    def topic_prefix(self) -> str:
+        if self.output.mqtt is not None and self.output.mqtt.topic_prefix:
+            return self.output.mqtt.topic_prefix
+        return f"streamcond/{self.station.name}"
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a TOML config; raises :class:`streamcond.errors.ConfigError`."""
+    from .errors import ConfigError, from_validation_error
+
+    p = Path(path)
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError([f"The config file {str(p)!r} does not exist."]) from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise ConfigError([f"The config file {str(p)!r} cannot be read: {e}."]) from None
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError([f"The config file {str(p)!r} is not valid TOML: {e}."]) from None
+    return config_from_dict(data)
+
+
+def config_from_dict(data: dict[str, Any]) -> Config:
+    from pydantic import ValidationError
+
+    from .errors import from_validation_error
+
+    try:
+        return Config.model_validate(data)
+    except ValidationError as e:
+        raise from_validation_error(e) from None
