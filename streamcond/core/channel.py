@@ -109,7 +109,9 @@ class ChannelConditioner:
         return out
 
     def _state(self, i: int, t: float, level: int, value: float) -> Tagged:
-        rec = records.state(self.name, t - self.delay_s, self.output_level(level), value)
+        # The sample time itself: the prefilter starts from a steady state, so there is no
+        # delay to take back before the first decision.
+        rec = records.state(self.name, t, self.output_level(level), value)
         return (i, RANK_STATE, rec)
 
     def _edges(
