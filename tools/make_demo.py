@@ -146,7 +146,7 @@ FLOW_LOW_V = 0.06
 FLOW_SIGMA_V = 0.018
 ADC_FULL_SCALE_V = 3.3
 BOUNCE_P = (0.55, 0.30, 0.15)  # probability of 0, 1, 2 glitches after an edge
-BOUNCE_WINDOW = 4  # glitches lie within this many samples after the edge
+BOUNCE_WINDOW = 3  # glitches lie within this many samples after the edge (a reed contact settles in ~8 ms)
 
 # --- drip-line demand (tank outflow) -----------------------------------------------------------
 Q_OUT_BASE_LPS = 1.10

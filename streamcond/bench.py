@@ -1,0 +1,244 @@
+"""``streamcond bench``: throughput on this machine, measured side by side in one run.
+
+Figures (DESIGN.md "bench --json"):
+
+* ``kernel_msps`` — the hysteresis comparator kernel on 10 M float64 samples;
+* ``floor_msps`` — a comparator *without* hysteresis on the same samples,
+  ``np.flatnonzero(np.diff(x > c))``: a single numpy threshold-and-difference pass, the floor a
+  vectorised kernel can hope to reach;
+* ``naive_msps`` — the straightforward per-sample Python loop over ``x.tolist()`` doing the same
+  hysteresis (timed on a slice, it is slow);
+* ``replay_rows_per_s`` / ``loadtxt_rows_per_s`` — ``streamcond replay`` of a generated
+  1 M-row, 4-channel CSV with a lowpass on every channel, as a whole process, next to a process
+  that imports numpy and scipy.signal and parses the same file with ``numpy.loadtxt``; with the
+  peak RSS of each (and of a replay of a quarter of the file, to show memory does not grow with
+  the file).
+
+Shared machines are noisy, so every figure is the best of ``--repeat`` runs and the ratios are
+what to read. Nothing here is asserted by the test suite.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+
+def _best(fn: Callable[[], Any], repeat: int) -> float:
+    best = float("inf")
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def _signal(n: int, seed: int = 7) -> np.ndarray:
+    """A slow sine with noise: many chattering threshold crossings, like a real slow signal."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / 1000.0
+    return np.sin(2 * np.pi * 0.5 * t) + 0.05 * rng.standard_normal(n)
+
+
+def kernel_figures(n: int, repeat: int) -> dict[str, Any]:
+    from .core.comparator import hysteresis, hysteresis_reference
+
+    x = _signal(n)
+    low, high = -0.1, 0.1
+    floor = _best(lambda: np.flatnonzero(np.diff(x > 0.0)), repeat)
+    kern = _best(lambda: hysteresis(x, low, high, -1), repeat)
+    m = min(n, 1_000_000)
+    naive = _best(lambda: hysteresis_reference(x[:m], low, high, -1), max(1, min(repeat, 2)))
+    tr, _ = hysteresis(x, low, high, -1)
+    ref_idx, ref_lev, _ = hysteresis_reference(x[:m], low, high, -1)
+    tr_m, _ = hysteresis(x[:m], low, high, -1)
+    agree = bool(np.array_equal(tr_m.index, ref_idx) and np.array_equal(tr_m.level, ref_lev))
+    return {
+        "samples": n,
+        "kernel_msps": n / kern / 1e6,
+        "floor_msps": n / floor / 1e6,
+        "naive_msps": m / naive / 1e6,
+        "naive_samples": m,
+        "kernel_vs_floor": floor / kern,
+        "kernel_vs_naive": (m / naive) and (n / kern) / (m / naive),
+        "kernel_transitions": len(tr),
+        "kernel_agrees_with_loop": agree,
+    }
+
+
+def write_csv(path: Path, rows: int, seed: int = 11) -> None:
+    """A 4-channel, 1 kHz recording with a millisecond time column (written in blocks)."""
+    rng = np.random.default_rng(seed)
+    with open(path, "w", encoding="ascii") as fh:
+        fh.write("t_ms,a,b,c,d\n")
+        step = 200_000
+        for a in range(0, rows, step):
+            k = np.arange(a, min(a + step, rows))
+            t = k / 1000.0
+            cols = [
+                np.sin(2 * np.pi * f * t) + 0.05 * rng.standard_normal(k.size)
+                for f in (0.2, 0.5, 1.0, 2.0)
+            ]
+            block = np.column_stack([k] + cols)
+            np.savetxt(fh, block, fmt=["%d", "%.5f", "%.5f", "%.5f", "%.5f"], delimiter=",")
+
+
+BENCH_CONFIG = """
+[source]
+kind = "file"
+time_column = "t_ms"
+time_scale = 0.001
+{channels}
+[output]
+events = "-"
+"""
+
+CHANNEL = """
+[[channel]]
+name = "{name}"
+filter = {{ kind = "lowpass", cutoff_hz = 20.0, order = 2 }}
+band = {{ low = -0.1, high = 0.1 }}
+"""
+
+
+def _run_process(argv: list[str]) -> tuple[float, float]:
+    """Wall time (s) and peak RSS (MiB) of one child process."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    _, status, ru = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
+    if proc.returncode != 0:
+        raise RuntimeError(f"{' '.join(argv)} failed: {err.strip()}")
+    # ru_maxrss is in KiB on Linux
+    return wall, ru.ru_maxrss / 1024.0
+
+
+def replay_figures(rows: int, repeat: int, workdir: Path) -> dict[str, Any]:
+    csv = workdir / "bench.csv"
+    quarter = workdir / "bench_quarter.csv"
+    write_csv(csv, rows)
+    write_csv(quarter, max(rows // 4, 1000))
+    cfg = workdir / "bench.toml"
+    cfg.write_text(
+        BENCH_CONFIG.format(channels="".join(CHANNEL.format(name=n) for n in "abcd")),
+        encoding="utf-8",
+    )
+    events = workdir / "events.jsonl"
+    py = sys.executable
+    replay = [py, "-m", "streamcond", "replay", str(csv), "-c", str(cfg), "--events", str(events),
+              "--no-progress"]
+    replay_q = [py, "-m", "streamcond", "replay", str(quarter), "-c", str(cfg), "--events",
+                str(events), "--no-progress"]
+    loadtxt = [py, "-c",
+               "import sys, numpy, scipy.signal; numpy.loadtxt(sys.argv[1], delimiter=',', skiprows=1)",
+               str(csv)]
+    reps = max(1, min(repeat, 3))
+    r_best = l_best = float("inf")
+    r_rss = l_rss = q_rss = 0.0
+    for _ in range(reps):  # interleaved, so both see the same machine load
+        w, m = _run_process(replay)
+        r_best, r_rss = min(r_best, w), max(r_rss, m)
+        w, m = _run_process(loadtxt)
+        l_best, l_rss = min(l_best, w), max(l_rss, m)
+    _, q_rss = _run_process(replay_q)
+    edges = 0
+    with open(events, encoding="utf-8") as fh:
+        for line in fh:
+            if '"kind":"edge"' in line:
+                edges += 1
+    return {
+        "rows": rows,
+        "replay_rows_per_s": rows / r_best,
+        "loadtxt_rows_per_s": rows / l_best,
+        "replay_s": r_best,
+        "loadtxt_s": l_best,
+        "replay_vs_loadtxt_time": r_best / l_best,
+        "replay_peak_rss_mib": r_rss,
+        "replay_quarter_file_peak_rss_mib": q_rss,
+        "loadtxt_peak_rss_mib": l_rss,
+        "csv_mib": csv.stat().st_size / 2**20,
+    }
+
+
+def machine() -> dict[str, Any]:
+    model = platform.processor() or ""
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    import scipy
+
+    return {
+        "cpu": model,
+        "cores": os.cpu_count(),
+        "machine": platform.machine(),
+        "system": f"{platform.system()} {platform.release()}",
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scipy": scipy.__version__,
+    }
+
+
+def run(samples: int = 10_000_000, rows: int = 1_000_000, repeat: int = 5,
+        progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    say = progress or (lambda s: None)
+    say(f"kernel: {samples:,} samples ...")
+    out: dict[str, Any] = {"machine": machine()}
+    out.update(kernel_figures(samples, repeat))
+    say(f"replay: generating a {rows:,}-row CSV and timing both processes ...")
+    with tempfile.TemporaryDirectory(prefix="streamcond-bench-") as d:
+        out.update(replay_figures(rows, repeat, Path(d)))
+    return out
+
+
+def format_table(r: dict[str, Any]) -> str:
+    m = r["machine"]
+    lines = [
+        f"machine: {m['cpu']} ({m['cores']} cores), Python {m['python']}, numpy {m['numpy']}, "
+        f"scipy {m['scipy']}",
+        "",
+        f"comparator on {r['samples']:,} float64 samples (best of runs):",
+        f"  hysteresis kernel        {r['kernel_msps']:9.1f} Msample/s",
+        f"  bare numpy comparator    {r['floor_msps']:9.1f} Msample/s   "
+        f"kernel/floor = {r['kernel_vs_floor']:.2f}  (target >= 0.8)",
+        f"  per-sample Python loop   {r['naive_msps']:9.2f} Msample/s   "
+        f"kernel/loop  = {r['kernel_vs_naive']:.0f}x  (target >= 15x)",
+        f"  kernel agrees with loop: {'yes' if r['kernel_agrees_with_loop'] else 'NO'}",
+        "",
+        f"replay of a {r['rows']:,}-row, 4-channel CSV ({r['csv_mib']:.0f} MiB), lowpass on every "
+        "channel, whole process:",
+        f"  streamcond replay        {r['replay_rows_per_s']:12,.0f} rows/s  "
+        f"{r['replay_s']:6.2f} s  peak {r['replay_peak_rss_mib']:.0f} MiB "
+        f"(quarter file: {r['replay_quarter_file_peak_rss_mib']:.0f} MiB)",
+        f"  numpy.loadtxt            {r['loadtxt_rows_per_s']:12,.0f} rows/s  "
+        f"{r['loadtxt_s']:6.2f} s  peak {r['loadtxt_peak_rss_mib']:.0f} MiB",
+        f"  replay/loadtxt time = {r['replay_vs_loadtxt_time']:.2f}  (target <= 1.5)",
+    ]
+    return "\n".join(lines)
+
+
+def main(args: Any) -> int:
+    def say(s: str) -> None:
+        if not args.json:
+            print(s, file=sys.stderr, flush=True)
+
+    r = run(args.samples, args.rows, args.repeat, progress=say)
+    if args.json:
+        print(json.dumps(r, indent=2))
+    else:
+        print(format_table(r))
+    return 0
