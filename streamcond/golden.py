@@ -81,10 +81,6 @@ def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str
         extra += b[j:]
         if not missing and not extra:
             continue
-        lines.append(
-            f"channel {ch}: {len(a)} edges expected, {len(b)} produced, "
-            f"{len(missing)} missing, {len(extra)} unexpected (tolerance {tolerance:g} s)"
-        )
         diffs: list[tuple[float, str]] = []
         used: set[int] = set()
         for m in missing:
@@ -107,6 +103,12 @@ def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str
         for k, x in enumerate(extra):
             if k not in used:
                 diffs.append((x.t, f"  + {_word(x.level)} at t={x.t:.6f} unexpected"))
+        moved = len(used)
+        lines.append(
+            f"channel {ch}: {len(a)} edges expected, {len(b)} produced; {moved} moved, "
+            f"{len(missing) - moved} missing, {len(extra) - moved} unexpected "
+            f"(tolerance {tolerance:g} s)"
+        )
         diffs.sort(key=lambda d: d[0])
         for _, text in diffs[:MAX_LINES]:
             lines.append(text)

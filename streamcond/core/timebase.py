@@ -116,6 +116,8 @@ class Timebase:
                 start += seg.size
                 continue
             i = start + int(bad[0])
+            if i > start:
+                last = float(out_t[i - 1])  # the samples before i in this window are regular
             step = out_t[i] - last
             k = i - ndrop  # output index of sample i if kept
             if step > limit:

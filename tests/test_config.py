@@ -1,0 +1,154 @@
+"""Config validation: one plain sentence per problem naming the key, exit code 2, no traceback."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from streamcond.config import FixedBand, config_from_dict, load_config
+from streamcond.errors import ConfigError
+
+ROOT = Path(__file__).resolve().parent.parent
+
+BASE = {
+    "source": {"kind": "file", "time_column": "t"},
+    "channel": [{"name": "level", "band": {"low": 10.0, "high": 12.0}}],
+}
+
+
+def errors_of(data) -> list[str]:
+    with pytest.raises(ConfigError) as e:
+        config_from_dict(data)
+    return e.value.messages
+
+
+def with_channel(**kw):
+    ch = dict(BASE["channel"][0])
+    ch.update(kw)
+    return {**BASE, "channel": [ch]}
+
+
+def test_the_demo_config_is_valid():
+    cfg = load_config(ROOT / "config" / "orchard_pump.toml")
+    assert [c.name for c in cfg.channel] == ["tank_high", "pump", "flow"]
+    assert cfg.topic_prefix == "streamcond/orchard-pump-2"
+
+
+def test_center_width_resolves_to_low_high():
+    cfg = config_from_dict(with_channel(band={"center": 11.0, "width": 2.0}))
+    band = cfg.channel[0].band
+    assert isinstance(band, FixedBand)
+    assert (band.low, band.high) == (10.0, 12.0)
+
+
+@pytest.mark.parametrize(
+    "data, expected",
+    [
+        (with_channel(band={"low": 12.0, "high": 10.0}),
+         "channel[0].band.low (12) must be below channel[0].band.high (10)."),
+        (with_channel(band={"center": 1.0}), "channel[0].band needs both center and width"),
+        (with_channel(band={"low": 1.0, "high": 2.0, "center": 1.5, "width": 1.0}),
+         "channel[0].band takes either low and high, or center and width"),
+        (with_channel(filter={"kind": "median", "window": 0}),
+         "channel[0].filter.window must be at least 1."),
+        (with_channel(filter={"kind": "wavelet"}), "channel[0].filter.kind must be one of"),
+        (with_channel(dwell={"rise_s": -1}), "channel[0].dwell.rise_s must be at least 0"),
+        (with_channel(name="tank level"), "channel[0].name may only contain"),
+        (with_channel(colour="red"), "channel[0].colour is not a known setting."),
+        (with_channel(band={"mode": "adaptive"}), "channel[0].band.center is required."),
+        ({**BASE, "source": {"kind": "file"}}, "source needs time_column"),
+        ({**BASE, "channel": []}, "channel must have at least 1 item"),
+        ({**BASE, "channel": BASE["channel"] * 2}, "channel names must be unique; repeated: level"),
+        ({**BASE, "stats": {"interval_s": 0}}, "stats.interval_s must be greater than 0"),
+        ({**BASE, "source": {"kind": "file", "sample_rate_hz": 100},
+          "channel": [{"name": "a", "band": {"low": 0, "high": 1},
+                       "filter": {"kind": "lowpass", "cutoff_hz": 60}}]},
+         "channel[0].filter.cutoff_hz must be below half of source.sample_rate_hz (50 Hz)"),
+    ],
+)
+def test_one_sentence_per_problem_naming_the_key(data, expected):
+    msgs = errors_of(data)
+    assert len(msgs) == 1, msgs
+    assert msgs[0].startswith(expected), msgs
+
+
+def test_several_problems_are_all_reported():
+    data = {
+        "station": {"name": "a b"},
+        "source": {"kind": "file", "time_colum": "t"},
+        "channel": [
+            {"name": "x", "band": {"low": 2, "high": 1}},
+            {"name": "y", "band": {"low": 0, "high": 1}, "gain": "big"},
+        ],
+    }
+    msgs = errors_of(data)
+    assert any(m.startswith("station.name") for m in msgs)
+    assert any(m.startswith("source.time_colum is not a known setting") for m in msgs)
+    assert any(m.startswith("channel[0].band.low") for m in msgs)
+    assert any(m.startswith("channel[1].gain must be a number") for m in msgs)
+
+
+def run_cli(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "streamcond", *args], cwd=cwd, capture_output=True, text=True
+    )
+
+
+def test_bad_config_exit_2_without_traceback(tmp_path):
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text(
+        '[source]\nkind = "file"\ntime_column = "t"\n'
+        '[[channel]]\nname = "a"\nband = { low = 5, high = 1 }\n'
+        '[[channel]]\nname = "b"\nband = { low = 0, high = 1 }\nfilter = { kind = "ema" }\n'
+    )
+    r = run_cli("check", "-c", str(cfg))
+    assert r.returncode == 2
+    assert "Traceback" not in r.stderr
+    lines = r.stderr.strip().splitlines()
+    assert lines == [
+        "channel[0].band.low (5) must be below channel[0].band.high (1).",
+        "channel[1].filter.tau_s is required.",
+    ]
+
+
+@pytest.mark.parametrize(
+    "text, fragment",
+    [
+        ("[source\nkind=1", "is not valid TOML"),
+        (None, "does not exist"),
+    ],
+)
+def test_unreadable_config_exit_2(tmp_path, text, fragment):
+    cfg = tmp_path / "c.toml"
+    if text is not None:
+        cfg.write_text(text)
+    r = run_cli("check", "-c", str(cfg))
+    assert r.returncode == 2 and fragment in r.stderr and "Traceback" not in r.stderr
+
+
+def test_check_prints_resolved_settings():
+    r = run_cli("check", "-c", "config/orchard_pump.toml")
+    assert r.returncode == 0, r.stderr
+    assert "low = 2.37" in r.stdout and "high = 2.43" in r.stdout
+    assert "delay_samples = 4.0" in r.stdout  # median of 9: (N-1)/2
+    r = run_cli("check", "-c", "config/orchard_pump.toml", "--json")
+    import json
+
+    d = json.loads(r.stdout)
+    assert d["channel"][0]["band"]["width"] == pytest.approx(0.06)
+
+
+def test_check_and_help_do_not_import_heavy_modules():
+    code = (
+        "import sys, streamcond.cli as c\n"
+        "c.main(['check', '-c', 'config/orchard_pump.toml'])\n"
+        "heavy = [m for m in ('scipy.signal', 'matplotlib', 'numpy', 'aiomqtt') if m in sys.modules]\n"
+        "print('HEAVY', heavy)\n"
+    )
+    r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
+    assert "HEAVY []" in r.stdout, r.stdout + r.stderr
+    r = run_cli("--help")
+    assert r.returncode == 0 and "replay" in r.stdout and "check" in r.stdout
