@@ -123,6 +123,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument(
         "--no-progress", action="store_true", help="no progress line, even on a terminal"
     )
+    r.add_argument(
+        "-q", "--quiet", action="store_true", help="no closing summary line on stderr"
+    )
 
     c = cmd(
         "check",
@@ -227,6 +230,8 @@ def _replay(args: argparse.Namespace) -> int:
     finally:
         progress.close()
         writer.close()
+    if not args.quiet:
+        print(summary_line(res.summary), file=sys.stderr)
     if expected is None:
         return EXIT_OK
     diff = compare(expected, edges_of(res.records), args.tolerance)
@@ -239,6 +244,19 @@ def _replay(args: argparse.Namespace) -> int:
     print(f"replay matches {args.expect}: {n} edges agree within {args.tolerance:g} s.",
           file=sys.stderr)
     return EXIT_OK
+
+
+def summary_line(s: dict) -> str:
+    """The replay's summary record in one sentence for people."""
+    edges = ", ".join(f"{k} {v:,}" for k, v in s.get("edges", {}).items())
+    span = ""
+    if s.get("t") is not None and s.get("sample_rate_hz"):
+        span = f" (to t = {s['t']:.3f} s at {s['sample_rate_hz']:g} Hz)"
+    return (
+        f"replayed {s.get('rows', 0):,} rows{span} in {s.get('run_time_s', 0):.2f} s; "
+        f"edges: {edges or 'none'}; {s.get('bad_lines', 0):,} bad lines, "
+        f"{s.get('gaps', 0):,} gaps."
+    )
 
 
 def _check(args: argparse.Namespace) -> int:
