@@ -29,6 +29,7 @@ examples:
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml --events -
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl
+  streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
   streamcond bench
 
 exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input."""
@@ -127,6 +128,27 @@ def build_parser() -> argparse.ArgumentParser:
         "-q", "--quiet", action="store_true", help="no closing summary line on stderr"
     )
 
+    t = cmd(
+        "tune",
+        "measure a channel's noise and suggest a band",
+        "Read a recording through the same parser and prefilter as replay, measure the channel's\n"
+        "noise (robust sigma and zero up-crossing rate), sweep band widths, find the plateau of\n"
+        "widths over which the edge count is stable, and suggest a width that lies on it and meets\n"
+        "a target false-edge rate (Rice's formula).",
+    )
+    t.add_argument("recording", metavar="RECORDING", help="recorded stream (CSV/kv/JSON lines)")
+    t.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    t.add_argument("--channel", required=True, metavar="NAME", help="the channel to tune")
+    t.add_argument("--json", action="store_true", help="machine-readable output")
+    t.add_argument("--plot", metavar="PNG", help="write a picture: trace, band, edges, sweep")
+    t.add_argument(
+        "--target-rate",
+        type=_positive_float,
+        default=None,
+        metavar="PER_HOUR",
+        help="acceptable false edges per hour from noise alone (default: see tune --help text)",
+    )
+
     c = cmd(
         "check",
         "validate a config and print the resolved settings",
@@ -181,6 +203,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _replay(args)
         if args.command == "check":
             return _check(args)
+        if args.command == "tune":
+            from .tune import main as tune_main
+
+            return tune_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 

@@ -224,6 +224,13 @@ class Channel(_Model):
 
 class Stats(_Model):
     interval_s: float = Field(10.0, gt=0)
+    #: Chattering: this many activations (rising edges) within chatter_window_s. Three within
+    #: 60 s is the common alarm-management criterion (ISA-18.2 practice, from memory).
+    chatter_count: int = Field(3, ge=2)
+    chatter_window_s: float = Field(60.0, gt=0)
+    #: Sliding window of the noise estimate for channels with a fixed band (an adaptive band
+    #: uses its own window_s).
+    noise_window_s: float = Field(5.0, gt=0)
 
 
 class Mqtt(_Model):

@@ -4,6 +4,10 @@ Pure and stateful; :meth:`ChannelConditioner.process` takes a block of sample ti
 values and returns the records the block produced, each tagged with the index of the sample at
 which it was emitted (so the pipeline can merge channels in an order that does not depend on
 how the stream was chunked).
+
+Inside a block the work is split at the *events* that change the rules — a noise-estimate update
+(the adaptive band may move) and the end of a stats window — which sit at fixed sample counts
+and sample times; between them the comparator kernels run over whole segments.
 """
 
 from __future__ import annotations
@@ -14,9 +18,12 @@ from typing import Any
 import numpy as np
 
 from .. import records
-from ..config import Channel, FixedBand
-from .comparator import UNKNOWN, DwellState, crossing_times, hysteresis, qualified_hysteresis
+from ..config import Channel, Stats
+from .band import make_band
+from .comparator import DwellState, crossing_times, hysteresis, qualified_hysteresis
 from .filters import StreamFilter, make_filter
+from .noise import NoiseTracker
+from .stats import ChannelStats
 
 #: Emission order of records of one channel at the same sample.
 RANK_STATS = 0
@@ -32,24 +39,11 @@ def build_filter(ch: Channel, sample_rate_hz: float) -> StreamFilter:
     return make_filter(f.kind, sample_rate_hz, **params)
 
 
-class FixedBandStage:
-    """A constant band; the adaptive band (noise-following) has the same interface."""
-
-    def __init__(self, band: FixedBand) -> None:
-        self.low = float(band.low)
-        self.high = float(band.high)
-
-    def thresholds(self, y: np.ndarray, level: int) -> tuple[float | np.ndarray, float | np.ndarray]:
-        return self.low, self.high
-
-    def copy(self) -> "FixedBandStage":
-        return copy.copy(self)
-
-
 class ChannelConditioner:
     """The conditioning chain of one configured channel."""
 
-    def __init__(self, cfg: Channel, sample_rate_hz: float) -> None:
+    def __init__(self, cfg: Channel, sample_rate_hz: float, stats: Stats | None = None) -> None:
+        stats = stats or Stats()
         self.cfg = cfg
         self.name = cfg.name
         self.gain = float(cfg.gain)
@@ -58,17 +52,23 @@ class ChannelConditioner:
         self.period = 1.0 / sample_rate_hz
         self.filter = build_filter(cfg, sample_rate_hz)
         self.delay_s = self.filter.delay_samples * self.period if cfg.compensate_delay else 0.0
-        if isinstance(cfg.band, FixedBand):
-            self.band: Any = FixedBandStage(cfg.band)
-        else:  # pragma: no cover - adaptive band arrives with the noise tracker
-            raise NotImplementedError("adaptive band")
+        self.band = make_band(cfg.band)
+        if self.band.adaptive:
+            self.noise = NoiseTracker(sample_rate_hz, cfg.band.window_s)
+        else:
+            # A fixed band needs σ̂ only for the stats records: one estimate per stats window.
+            every = max(1, round(stats.interval_s * sample_rate_hz))
+            self.noise = NoiseTracker(sample_rate_hz, stats.noise_window_s, update_every=every)
+        self.stats = ChannelStats(
+            cfg.name, stats.interval_s, self.band.center, stats.chatter_window_s, stats.chatter_count
+        )
         self.rise_s = float(cfg.dwell.rise_s)
         self.fall_s = float(cfg.dwell.fall_s)
         self.dwell = DwellState()
+        self._pending_noise: tuple[float, float] | None = None
         self.seq = 0  # last seq issued
         self.edges = 0  # edges emitted in this run
 
-    # -- state that outlives a run (daemon restarts) --------------------------------------
     @property
     def level(self) -> int:
         """Comparator level (before ``invert``), UNKNOWN before the first decisive sample."""
@@ -79,33 +79,77 @@ class ChannelConditioner:
 
     def process(self, t: np.ndarray, raw: np.ndarray) -> list[Tagged]:
         """Condition one block; returns ``(sample index, rank, record)`` tuples in order."""
-        if t.size == 0:
+        n = t.size
+        if n == 0:
             return []
+        raw = np.asarray(raw, dtype=np.float64)
         v = raw * self.gain + self.offset if (self.gain != 1.0 or self.offset != 0.0) else raw
-        y = self.filter.process(np.asarray(v, dtype=np.float64))
-        low, high = self.band.thresholds(y, self.dwell.level)
+        y = self.filter.process(v)
+        # events inside the block: (sample index, order, payload)
+        events: list[tuple[int, int, Any]] = []
+        if self._pending_noise is not None:
+            # an estimate that completed on the previous block's last sample
+            events.append((0, 1, self._pending_noise))
+            self._pending_noise = None
+        idx, sig, nu0 = self.noise.process(y)
+        for i, s_, n_ in zip(idx.tolist(), sig.tolist(), nu0.tolist()):
+            if i + 1 < n:
+                events.append((i + 1, 1, (s_, n_)))  # the estimate includes sample i
+            else:
+                self._pending_noise = (s_, n_)  # applies from the next block's first sample
+        for j in self.stats.boundaries(t):
+            events.append((j, 0, None))
+        events.sort(key=lambda e: (e[0], e[1]))
+        out: list[Tagged] = []
+        a = 0
+        for k, order, payload in events:
+            if k > a:
+                out.extend(self._segment(t, v, y, a, k))
+                a = k
+            if order == 0:
+                rec = self.stats.close(float(t[k]), self.band.low, self.band.high)
+                if rec is not None:
+                    out.append((k, RANK_STATS, rec))
+            else:
+                self._apply_noise(payload, y, k)
+        if a < n:
+            out.extend(self._segment(t, v, y, a, n))
+        return out
+
+    def _apply_noise(self, est: tuple[float, float], y: np.ndarray, k: int) -> None:
+        """A new noise estimate, in force from sample ``k`` of the block."""
+        sigma, nu0 = est
+        self.stats.noise(sigma, nu0)
+        last = y[k - 1] if k > 0 else self.dwell.prev_x
+        self.band.propose(sigma, self.dwell.level, float(last))
+
+    def _segment(self, t: np.ndarray, v: np.ndarray, y: np.ndarray, a: int, b: int) -> list[Tagged]:
+        """Run the comparator over samples [a, b) with the band in force."""
+        ts, ys = t[a:b], y[a:b]
+        low, high = self.band.low, self.band.high
         st = self.dwell
         out: list[Tagged] = []
+        self.stats.add_samples(v[a:b])
         if self.rise_s == 0.0 and self.fall_s == 0.0:
             # The fast path: the block kernel, then interpolation at the sparse transitions.
             prev_t, prev_x = st.prev_t, st.prev_x
-            tr, st.level = hysteresis(y, low, high, st.level)
-            st.prev_t, st.prev_x = float(t[-1]), float(y[-1])
+            tr, st.level = hysteresis(ys, low, high, st.level)
+            st.prev_t, st.prev_x = float(ts[-1]), float(ys[-1])
             idx, lev = tr.index, tr.level
             if tr.initial:
                 i0 = int(idx[0])
-                out.append(self._state(i0, float(t[i0]), int(lev[0]), float(y[i0])))
+                out.append(self._state(a + i0, float(ts[i0]), int(lev[0]), float(ys[i0])))
                 idx, lev = idx[1:], lev[1:]
             if idx.size:
-                tc = crossing_times(t, y, idx, lev, low, high, prev_t, prev_x)
-                out.extend(self._edges(idx, tc, y[idx], lev))
+                tc = crossing_times(ts, ys, idx, lev, low, high, prev_t, prev_x)
+                out.extend(self._edges(idx + a, tc, ys[idx], lev))
             return out
-        q = qualified_hysteresis(t, y, low, high, self.rise_s, self.fall_s, st)
+        q = qualified_hysteresis(ts, ys, low, high, self.rise_s, self.fall_s, st)
         if q.initial is not None:
             i0, l0, t0, v0 = q.initial
-            out.append(self._state(i0, t0, l0, v0))
+            out.append(self._state(a + i0, t0, l0, v0))
         if q.emit.size:
-            out.extend(self._edges(q.emit, q.t, q.value, q.level))
+            out.extend(self._edges(q.emit + a, q.t, q.value, q.level))
         return out
 
     def _state(self, i: int, t: float, level: int, value: float) -> Tagged:
@@ -119,17 +163,19 @@ class ChannelConditioner:
     ) -> list[Tagged]:
         out: list[Tagged] = []
         tcs = (tc - self.delay_s).tolist()
-        vals = value.tolist()
-        levs = level.tolist()
-        for i, tt, vv, lv in zip(emit.tolist(), tcs, vals, levs):
+        levs = [self.output_level(lv) for lv in level.tolist()]
+        for i, tt, vv, lv in zip(emit.tolist(), tcs, value.tolist(), levs):
             self.seq += 1
             self.edges += 1
-            out.append((i, RANK_EDGE, records.edge(self.name, tt, self.output_level(lv), vv, self.seq)))
+            out.append((i, RANK_EDGE, records.edge(self.name, tt, lv, vv, self.seq)))
+        self.stats.add_edges(tcs, levs)
         return out
 
     def copy(self) -> "ChannelConditioner":
         new = copy.copy(self)
         new.filter = self.filter.copy()
         new.band = self.band.copy()
+        new.noise = self.noise.copy()
+        new.stats = self.stats.copy()
         new.dwell = copy.copy(self.dwell)
         return new

@@ -51,7 +51,7 @@ class Pipeline:
     def _start_channels(self) -> None:
         fs = self.sample_rate_hz
         assert fs is not None
-        self.channels = [ChannelConditioner(ch, fs) for ch in self.cfg.channel]
+        self.channels = [ChannelConditioner(ch, fs, self.cfg.stats) for ch in self.cfg.channel]
 
     def process(self, rows: np.ndarray) -> list[dict[str, Any]]:
         """Condition a block of rows; returns the records it completed."""

@@ -1,0 +1,163 @@
+"""Per-channel chatter statistics over windows of sample time (the ``stats`` record).
+
+Each window is ``[k·I, (k+1)·I)`` of sample time (I = ``stats.interval_s``; aligned to
+multiples of I, so the windows do not depend on where a recording or a block starts). A window's
+record is emitted at the first sample past its end. Windows that hold no sample (a gap in the
+data) produce no record.
+
+Fields and where their numbers come from:
+
+* ``raw_crossings`` — crossings of the band centre by the *scaled, unfiltered* value: what a
+  bare comparator with no prefilter, no hysteresis and no dwell would have reported.
+* ``edges`` — the edges this channel actually emitted in the window; ``suppression_ratio`` =
+  raw_crossings / edges.
+* ``min_edge_spacing_s`` — the shortest time between consecutive edges ending in the window.
+* ``noise_sigma``, ``nu0_hz`` — the latest noise estimate (σ̂, zero up-crossing rate),
+  ``null`` until the first one.
+* ``band_low``, ``band_high`` — the band in force at the window's end; ``margin_sigma`` =
+  half-width / σ̂.
+* ``predicted_false_rate_per_hour`` — Rice's formula (S. O. Rice, Bell System Technical Journal,
+  1944–45): Gaussian noise crosses a level h above its mean upward ν0·exp(−h²/2σ²) times per
+  second; with h the half-width this is the rate of false threshold crossings for a signal
+  resting at the band centre, an upper bound on false edges (a false edge needs the noise to
+  carry the signal past a threshold, and a full false cycle past both).
+* ``chattering`` — ``chatter_count`` or more activations (rising edges of the output level)
+  within ``chatter_window_s``: the common alarm-management criterion of three or more
+  activations of one alarm within one minute (ISA-18.2 practice, from memory).
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from collections import deque
+from typing import Any
+
+import numpy as np
+
+from .. import records
+
+
+class ChannelStats:
+    """Accumulates one channel's statistics and emits a record per sample-time window."""
+
+    def __init__(
+        self,
+        channel: str,
+        interval_s: float,
+        center: float,
+        chatter_window_s: float = 60.0,
+        chatter_count: int = 3,
+    ) -> None:
+        self.channel = channel
+        self.interval = float(interval_s)
+        self.center = float(center)
+        self.chatter_window = float(chatter_window_s)
+        self.chatter_count = int(chatter_count)
+        self.window: int | None = None  # index k of the current window [kI, (k+1)I)
+        self._reset_counts()
+        self.prev_above: bool | None = None  # last raw sample above the centre?
+        self.last_edge_t = math.nan
+        self.activations: deque[float] = deque(maxlen=max(self.chatter_count, 1))
+        self.sigma = math.nan
+        self.nu0 = math.nan
+
+    def _reset_counts(self) -> None:
+        self.samples = 0
+        self.raw = 0
+        self.edges = 0
+        self.min_spacing = math.inf
+        self.chattering = False
+
+    # -- window bookkeeping -----------------------------------------------------------------
+    def boundaries(self, t: np.ndarray) -> list[int]:
+        """Indices into ``t`` where a new window starts (the first sample past a window end)."""
+        out: list[int] = []
+        if t.size == 0:
+            return out
+        k = self.window
+        if k is None:
+            k = math.floor(t[0] / self.interval)
+            self.window = k
+        start = 0
+        while True:
+            end_t = (k + 1) * self.interval
+            j = int(np.searchsorted(t[start:], end_t, side="left")) + start
+            if j >= t.size:
+                break
+            out.append(j)
+            k = math.floor(t[j] / self.interval)  # skips windows with no samples (gaps)
+            start = j
+        return out
+
+    def close(self, t_next: float, low: float, high: float) -> dict[str, Any] | None:
+        """Emit the record of the current window (at the sample ``t_next``), start the next."""
+        assert self.window is not None
+        rec = self._record(low, high) if self.samples else None
+        self.window = math.floor(t_next / self.interval)
+        self._reset_counts()
+        return rec
+
+    def _record(self, low: float, high: float) -> dict[str, Any]:
+        k = self.window
+        half = (high - low) / 2.0
+        sig, nu0 = self.sigma, self.nu0
+        margin = half / sig if sig > 0 and math.isfinite(half) else math.nan
+        if sig > 0 and nu0 >= 0 and math.isfinite(half):
+            rate = nu0 * math.exp(-(half * half) / (2.0 * sig * sig)) * 3600.0
+        else:
+            rate = math.nan
+        return {
+            "kind": records.STATS,
+            "channel": self.channel,
+            "t": k * self.interval,
+            "t_end": (k + 1) * self.interval,
+            "samples": self.samples,
+            "raw_crossings": self.raw,
+            "edges": self.edges,
+            "suppression_ratio": (self.raw / self.edges) if self.edges else None,
+            "min_edge_spacing_s": self.min_spacing if math.isfinite(self.min_spacing) else None,
+            "noise_sigma": sig,
+            "nu0_hz": nu0,
+            "band_low": low,
+            "band_high": high,
+            "margin_sigma": margin,
+            "predicted_false_rate_per_hour": rate,
+            "chattering": self.chattering,
+        }
+
+    # -- accumulation -------------------------------------------------------------------------
+    def add_samples(self, v: np.ndarray) -> None:
+        """Scaled, unfiltered values of consecutive samples inside the current window."""
+        if v.size == 0:
+            return
+        above = v > self.center
+        n = int(np.count_nonzero(above[1:] != above[:-1]))
+        if self.prev_above is not None and bool(above[0]) != self.prev_above:
+            n += 1
+        self.raw += n
+        self.prev_above = bool(above[-1])
+        self.samples += int(v.size)
+
+    def add_edges(self, times: list[float], levels: list[int]) -> None:
+        """Edges emitted in the current window (times in order, output levels)."""
+        for t, lv in zip(times, levels):
+            self.edges += 1
+            if math.isfinite(self.last_edge_t):
+                self.min_spacing = min(self.min_spacing, t - self.last_edge_t)
+            self.last_edge_t = t
+            if lv == 1:
+                self.activations.append(t)
+                if (
+                    len(self.activations) >= self.chatter_count
+                    and t - self.activations[0] <= self.chatter_window
+                ):
+                    self.chattering = True
+
+    def noise(self, sigma: float, nu0: float) -> None:
+        self.sigma, self.nu0 = float(sigma), float(nu0)
+
+    def copy(self) -> "ChannelStats":
+        new = copy.copy(self)
+        new.activations = deque(self.activations, maxlen=self.activations.maxlen)
+        return new
