@@ -83,6 +83,7 @@ def run_replay(
     progress: Any = None,
     block_bytes: int = DEFAULT_BLOCK_BYTES,
     sleep: Callable[[float], None] = time.sleep,
+    clock: Callable[[], float] = time.monotonic,
 ) -> ReplayResult:
     """Replay ``recording`` through the pipeline, handing every record to ``sink``.
 
@@ -96,6 +97,7 @@ def run_replay(
     res = ReplayResult()
     wall0 = time.monotonic()
     t_first: float | None = None
+    pace0 = 0.0
     if speed is not None and chunk is None:
         chunk = 32  # pace in small steps so a live consumer sees a steady stream
 
@@ -122,8 +124,8 @@ def run_replay(
             if speed is not None and np.isfinite(pipe.last_t):
                 if t_first is None:
                     t_first = pipe.last_t
-                    wall0 = time.monotonic()
-                wait = (pipe.last_t - t_first) / speed - (time.monotonic() - wall0)
+                    pace0 = clock()
+                wait = (pipe.last_t - t_first) / speed - (clock() - pace0)
                 if wait > 0:
                     sleep(wait)
         if progress is not None:

@@ -152,3 +152,24 @@ def test_check_and_help_do_not_import_heavy_modules():
     assert "HEAVY []" in r.stdout, r.stdout + r.stderr
     r = run_cli("--help")
     assert r.returncode == 0 and "replay" in r.stdout and "check" in r.stdout
+
+
+def test_settings_impossible_at_the_measured_rate_exit_2(tmp_path):
+    # the demo runs at 250 Hz (from its time column): a 200 Hz lowpass and a 0.1 s adaptive
+    # window (25 samples) can only be refused once the rate is known
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(
+        '[source]\nkind = "file"\ntime_column = "t_ms"\ntime_scale = 0.001\n'
+        '[[channel]]\nname = "a"\ncolumn = "level_ma"\n'
+        'band = { mode = "adaptive", center = 12, window_s = 0.1 }\n'
+    )
+    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg))
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert r.stderr.startswith("channel[0].band.window_s (0.1 s) holds 25 samples at 250 Hz")
+    cfg.write_text(
+        '[source]\nkind = "file"\ntime_column = "t_ms"\ntime_scale = 0.001\n'
+        '[[channel]]\nname = "b"\ncolumn = "pump_a"\nband = { low = 1, high = 2 }\n'
+        'filter = { kind = "lowpass", cutoff_hz = 200 }\n'
+    )
+    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg))
+    assert r.returncode == 2 and r.stderr.startswith("channel[0].filter:") and "Nyquist" in r.stderr

@@ -176,11 +176,17 @@ def test_missing_column_is_named(tmp_path):
 
 
 def test_speed_paces_by_sample_time():
-    waits: list[float] = []
+    now = [0.0]  # a clock that only the pacing's sleeps move: no real time involved
+
+    def sleep(d: float) -> None:
+        assert d > 0
+        now[0] += d
+
     cfg = load_config(CONFIG)
-    res = run_replay(cfg, DEMO, speed=20.0, sleep=waits.append)
-    # 180 s of samples at 20x: the last wait asked for lands near 9 s of wall time
-    assert max(waits) == pytest.approx(TRUTH["duration_s"] / 20.0, abs=0.5)
+    res = run_replay(cfg, DEMO, speed=20.0, sleep=sleep, clock=lambda: now[0])
+    # 180 s of samples at 20x take 9 s; pacing is by sample time from the first paced block
+    first_block_t = 31 * 0.004  # the first 32-row block ends at t = 0.124 s
+    assert now[0] == pytest.approx((TRUTH["duration_s"] - 0.004 - first_block_t) / 20.0, abs=1e-9)
     assert res.summary["rows"] == TRUTH["rows"]
 
 

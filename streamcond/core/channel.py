@@ -22,7 +22,7 @@ from ..config import Channel, Stats
 from .band import make_band
 from .comparator import DwellState, crossing_times, hysteresis, qualified_hysteresis
 from .filters import StreamFilter, make_filter
-from .noise import NoiseTracker
+from .noise import MIN_SAMPLES, NoiseTracker
 from .stats import ChannelStats
 
 #: Emission order of records of one channel at the same sample.
@@ -54,11 +54,19 @@ class ChannelConditioner:
         self.delay_s = self.filter.delay_samples * self.period if cfg.compensate_delay else 0.0
         self.band = make_band(cfg.band)
         if self.band.adaptive:
+            n_win = round(cfg.band.window_s * sample_rate_hz)
+            if n_win < MIN_SAMPLES:
+                raise ValueError(
+                    f"{{at}}.band.window_s ({cfg.band.window_s:g} s) holds {n_win} samples at "
+                    f"{sample_rate_hz:g} Hz; the noise estimate needs at least {MIN_SAMPLES}"
+                )
             self.noise = NoiseTracker(sample_rate_hz, cfg.band.window_s)
         else:
-            # A fixed band needs σ̂ only for the stats records: one estimate per stats window.
+            # A fixed band needs σ̂ only for the stats records: one estimate per stats window,
+            # over at least the estimator's minimum number of samples.
             every = max(1, round(stats.interval_s * sample_rate_hz))
-            self.noise = NoiseTracker(sample_rate_hz, stats.noise_window_s, update_every=every)
+            window_s = max(stats.noise_window_s, MIN_SAMPLES / sample_rate_hz)
+            self.noise = NoiseTracker(sample_rate_hz, window_s, update_every=every)
         self.stats = ChannelStats(
             cfg.name, stats.interval_s, self.band.center, stats.chatter_window_s, stats.chatter_count
         )

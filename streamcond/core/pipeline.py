@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..config import Config
+from ..errors import ConfigError
 from .channel import ChannelConditioner
 from .timebase import Timebase
 
@@ -51,7 +52,16 @@ class Pipeline:
     def _start_channels(self) -> None:
         fs = self.sample_rate_hz
         assert fs is not None
-        self.channels = [ChannelConditioner(ch, fs, self.cfg.stats) for ch in self.cfg.channel]
+        channels = []
+        for i, ch in enumerate(self.cfg.channel):
+            try:
+                channels.append(ChannelConditioner(ch, fs, self.cfg.stats))
+            except ValueError as e:
+                # settings that only the sample rate shows to be impossible
+                msg = str(e)
+                msg = msg.replace("{at}", f"channel[{i}]") if "{at}" in msg else f"channel[{i}].filter: {msg}"
+                raise ConfigError([msg]) from None
+        self.channels = channels
 
     def process(self, rows: np.ndarray) -> list[dict[str, Any]]:
         """Condition a block of rows; returns the records it completed."""

@@ -131,9 +131,10 @@ class Timebase:
                 gaps.append((k, records.gap(last, last, "out_of_order", dropped=1)))
             else:
                 # time reset: re-base so the stream continues one period after the last sample
-                shift = (last + self.period) - out_t[i]
-                self.offset += shift
-                out_t[i:] += shift
+                # computed from the raw times, never by adding to the shifted ones, so the
+                # result does not depend on where the blocks were cut
+                self.offset = (last + self.period) - ts[i]
+                out_t[i:] = ts[i:] + self.offset
                 gaps.append((k, records.gap(last, float(out_t[i]), "time_reset")))
                 last = float(out_t[i])
             start = i + 1
