@@ -1,0 +1,103 @@
+"""The stats record: counts against closed forms, Rice's prediction, the chattering criterion."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from streamcond.config import config_from_dict
+from streamcond.core.pipeline import Pipeline
+from streamcond.core.stats import ChannelStats
+
+FS = 1000.0
+
+
+def run(cfg: dict, t: np.ndarray, x: np.ndarray, chunk: int | None = None) -> list[dict]:
+    c = config_from_dict(cfg)
+    p = Pipeline(c, ["t", "x"])
+    rows = np.column_stack([t, x])
+    out: list[dict] = []
+    step = chunk or len(rows)
+    for a in range(0, len(rows), step):
+        out += p.process(rows[a : a + step])
+    return out + p.finish()
+
+
+def base(band: dict, **stats) -> dict:
+    return {
+        "source": {"kind": "file", "time_column": "t", "sample_rate_hz": FS},
+        "channel": [{"name": "x", "band": band}],
+        "stats": {"interval_s": 10.0, **stats},
+    }
+
+
+def test_windows_are_aligned_to_sample_time_and_count_crossings():
+    # A clean 0.7 Hz sine through the centre: a bare comparator at the centre flips twice per
+    # period (closed form: 2·f·T crossings in a window of T seconds, ±1 at the window edges);
+    # with a band of ±0.5 of a unit-amplitude sine the hysteresis gives the same count.
+    t = np.arange(0, 35.0, 1 / FS) + 3.0  # starts mid-window: windows stay aligned to 10 s
+    x = np.sin(2 * np.pi * 0.7 * t)
+    recs = [r for r in run(base({"low": -0.5, "high": 0.5}), t, x) if r["kind"] == "stats"]
+    assert [(r["t"], r["t_end"]) for r in recs] == [(0.0, 10.0), (10.0, 20.0), (20.0, 30.0)]
+    assert recs[0]["samples"] == 7000 and recs[1]["samples"] == 10000
+    for r in recs[1:]:
+        assert abs(r["raw_crossings"] - 2 * 0.7 * 10) <= 1
+        assert abs(r["edges"] - r["raw_crossings"]) <= 1
+        # consecutive edges of a sine at ±0.5: arcsin spacing, closed form
+        # rising at asin(0.5)/ω, falling at (π + asin(0.5))/ω ... spacing π/ω = 1/(2f)
+        assert r["min_edge_spacing_s"] == pytest.approx(1 / (2 * 0.7), rel=1e-3)
+        assert (r["band_low"], r["band_high"]) == (-0.5, 0.5)
+
+
+def test_noise_margin_and_rice_prediction():
+    # white noise, σ = 0.1, around a level far inside the band's lower side
+    rng = np.random.default_rng(4)
+    t = np.arange(0, 30.0, 1 / FS)
+    x = 0.1 * rng.standard_normal(t.size)
+    recs = [r for r in run(base({"low": -0.2, "high": 0.2}), t, x) if r["kind"] == "stats"]
+    r = recs[-1]
+    assert r["noise_sigma"] == pytest.approx(0.1, rel=0.1)
+    assert r["margin_sigma"] == pytest.approx(0.2 / r["noise_sigma"])
+    # Rice (S. O. Rice, BSTJ 1944-45): ν0·exp(−h²/2σ²) per second, h the half-width
+    expect = r["nu0_hz"] * math.exp(-(0.2**2) / (2 * r["noise_sigma"] ** 2)) * 3600
+    assert r["predicted_false_rate_per_hour"] == pytest.approx(expect)
+    # a bare comparator at the centre flips at ~2·ν0 per second on this noise
+    assert r["raw_crossings"] == pytest.approx(2 * r["nu0_hz"] * 10, rel=0.15)
+    # and sampled white noise has ν0 = fs·arccos(0)/2π = fs/4 (Sheppard's orthant probability)
+    assert r["nu0_hz"] == pytest.approx(FS / 4, rel=0.05)
+
+
+def test_chattering_flag_three_activations_within_a_minute():
+    # ISA-18.2 practice (from memory): three or more activations within 60 s is chattering.
+    s = ChannelStats("x", 600.0, 0.0)
+    s.add_edges([0.0, 10.0, 25.0, 70.0], [1, 0, 1, 0])
+    assert not s.chattering  # two activations
+    s.add_edges([59.0], [1])  # third activation 59 s after the first
+    assert s.chattering
+    s2 = ChannelStats("x", 600.0, 0.0)
+    s2.add_edges([0.0, 30.0, 61.0], [1, 1, 1])  # three activations spread over 61 s
+    assert not s2.chattering
+
+
+def test_stats_records_do_not_depend_on_chunking():
+    rng = np.random.default_rng(9)
+    t = np.arange(0, 25.0, 1 / FS)
+    x = np.sign(np.sin(2 * np.pi * 0.3 * t)) + 0.2 * rng.standard_normal(t.size)
+    cfg = base({"low": -0.3, "high": 0.3})
+    whole = run(cfg, t, x)
+    for chunk in (1, 333, 4096):
+        assert run(cfg, t, x, chunk) == whole
+
+
+def test_gap_leaves_no_empty_windows():
+    t = np.r_[np.arange(0, 12, 1 / FS), np.arange(45, 52, 1 / FS)]
+    x = np.zeros(t.size)
+    recs = [r for r in run(base({"low": -1, "high": 1}), t, x) if r["kind"] in ("stats", "gap")]
+    assert [(r["kind"], r["t"]) for r in recs] == [
+        ("stats", 0.0),
+        ("gap", pytest.approx(12 - 1 / FS)),
+        ("stats", 10.0),  # 10-12 s, closed by the first sample after the gap
+        ("stats", 40.0),  # 45-50 s; the windows 20-40 s held no sample and give no record
+    ]
