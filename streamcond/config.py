@@ -65,11 +65,9 @@ class Source(_Model):
 
     @model_validator(mode="after")
     def _needs_time(self) -> "Source":
-        if self.kind == "file" and self.time_column is None and self.sample_rate_hz is None:
-            raise ValueError(
-                "source needs time_column (sample time from the data) or sample_rate_hz "
-                "(a fixed rate) for a file source"
-            )
+        # Without time_column and sample_rate_hz, sample time is the host receive time: the
+        # live serial source and captures made by `streamcond record` carry it; a plain
+        # recording does not, which replay reports when it opens one.
         if self.kind == "serial" and not self.port:
             raise ValueError("source.port is required when source.kind is \"serial\"")
         if self.columns is not None and self.time_column is not None:

@@ -18,7 +18,8 @@ import numpy as np
 from . import records
 from .config import Config
 from .errors import InputError
-from .io.lineparse import LineParser
+from .io.capture import is_capture, read_capture_blocks
+from .io.lineparse import HOST_T, LineParser
 from .io.recording import DEFAULT_BLOCK_BYTES, read_blocks
 
 log = logging.getLogger(__name__)
@@ -93,6 +94,24 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser = make_parser(cfg)
+    src = cfg.source
+    capture = is_capture(recording)
+    timeless = src.time_column is None and src.sample_rate_hz is None
+    if timeless and not capture:
+        raise InputError(
+            f"The recording {str(recording)!r} carries no sample time: set source.time_column "
+            "or source.sample_rate_hz, or replay a capture made by `streamcond record`"
+        )
+    host_time = capture and timeless
+    if capture:
+        blocks = read_capture_blocks(recording, parser, host_time, block_bytes)
+    else:
+        blocks = read_blocks(recording, parser, block_bytes)
+
+    def new_pipeline(columns: list[str]) -> Pipeline:
+        check_columns(cfg, columns)
+        return Pipeline(cfg, columns + [HOST_T] if host_time else columns, host_time=host_time)
+
     pipe: Pipeline | None = None
     res = ReplayResult()
     wall0 = time.monotonic()
@@ -108,7 +127,7 @@ def run_replay(
             if keep_records:
                 res.records.append(r)
 
-    for parsed, done, size in read_blocks(recording, parser, block_bytes):
+    for parsed, done, size in blocks:
         if parsed.examples:
             for msg in parsed.examples:
                 log.warning("bad input skipped: %s", msg)
@@ -116,8 +135,7 @@ def run_replay(
         if pipe is None:
             if parser.columns is None:
                 continue
-            check_columns(cfg, parser.columns)
-            pipe = Pipeline(cfg, parser.columns)
+            pipe = new_pipeline(parser.columns)
         for piece in _chunks(parsed.rows, chunk):
             res.rows += piece.shape[0]
             emit(pipe.process(piece))
@@ -133,8 +151,7 @@ def run_replay(
     if pipe is None:
         if parser.columns is None:
             raise InputError(f"The recording {str(recording)!r} holds no data lines")
-        check_columns(cfg, parser.columns)
-        pipe = Pipeline(cfg, parser.columns)
+        pipe = new_pipeline(parser.columns)
     emit(pipe.finish())
     if parser.bad > len(parser.examples):
         log.warning("%d bad lines skipped in all (the first %d are listed above)",

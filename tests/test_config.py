@@ -59,7 +59,7 @@ def test_center_width_resolves_to_low_high():
         (with_channel(name="tank level"), "channel[0].name may only contain"),
         (with_channel(colour="red"), "channel[0].colour is not a known setting."),
         (with_channel(band={"mode": "adaptive"}), "channel[0].band.center is required."),
-        ({**BASE, "source": {"kind": "file"}}, "source needs time_column"),
+        ({**BASE, "source": {"kind": "serial"}}, "source.port is required"),
         ({**BASE, "channel": []}, "channel must have at least 1 item"),
         ({**BASE, "channel": BASE["channel"] * 2}, "channel names must be unique; repeated: level"),
         ({**BASE, "stats": {"interval_s": 0}}, "stats.interval_s must be greater than 0"),

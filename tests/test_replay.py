@@ -212,3 +212,36 @@ def test_compare_pairs_moved_missing_and_unexpected():
     lines = compare(exp, got, 1e-6)
     assert lines[0].startswith("channel a: 3 edges expected, 3 produced; 1 moved, 1 missing, 1 unexpected")
     assert compare(exp, exp, 0.0) == []
+
+
+def test_plain_recording_without_time_is_refused(tmp_path):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[source]\nkind = "file"\n[[channel]]\nname = "level_ma"\nband = { low = 1, high = 2 }\n')
+    r = run_cli("replay", str(DEMO), "-c", str(cfg))
+    assert r.returncode == 2 and "carries no sample time" in r.stderr
+
+
+def test_capture_replays_with_host_times(tmp_path):
+    # A capture made of the demo's lines with host times 4 ms apart and a 1000 s offset: a
+    # config without time column uses the host times and gives the demo's edges shifted by
+    # exactly that offset (the demo's own clock starts at 0 and ticks in 4 ms steps).
+    import numpy as np
+
+    from streamcond.io.capture import CaptureWriter
+
+    raw = DEMO.read_bytes().splitlines()
+    lines = [b",".join(line.split(b",")[1:]) for line in raw]  # drop the MCU's time column
+    times = 1000.0 + np.r_[0.0, np.arange(len(lines) - 1) * 0.004]
+    cap = tmp_path / "cap.txt"
+    w = CaptureWriter(cap)
+    w.write(lines, times)
+    w.close()
+    base = CONFIG.read_text()
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(base.replace('time_column = "t_ms"', "").replace("time_scale = 0.001", ""))
+    res = run_replay(load_config(cfg), cap, keep_records=True)
+    ref = run_replay(load_config(CONFIG), DEMO, keep_records=True)
+    e1 = [(r["channel"], r["level"], r["t"]) for r in res.records if r["kind"] == "edge"]
+    e0 = [(r["channel"], r["level"], r["t"]) for r in ref.records if r["kind"] == "edge"]
+    assert len(e1) == len(e0)
+    assert all(a[:2] == b[:2] and abs(a[2] - 1000.0 - b[2]) < 1e-6 for a, b in zip(e1, e0))

@@ -25,15 +25,22 @@ from .timebase import Timebase
 class Pipeline:
     """Conditions the configured channels of one source."""
 
-    def __init__(self, cfg: Config, columns: list[str]) -> None:
+    def __init__(self, cfg: Config, columns: list[str], host_time: bool = False) -> None:
+        """``columns`` name the row columns; with ``host_time`` the last one holds host receive
+        times in seconds (used as sample time when the data carries none)."""
         self.cfg = cfg
         self.columns = list(columns)
         src = cfg.source
         col_index = {c: i for i, c in enumerate(self.columns)}
-        self.time_col = col_index[src.time_column] if src.time_column else None
+        if host_time:
+            self.time_col: int | None = len(self.columns) - 1
+            scale = 1.0
+        else:
+            self.time_col = col_index[src.time_column] if src.time_column else None
+            scale = src.time_scale
         self.chan_cols = [col_index[ch.source_column] for ch in cfg.channel]
         self.timebase = Timebase(
-            time_scale=src.time_scale,
+            time_scale=scale,
             sample_rate_hz=src.sample_rate_hz,
             has_time_column=self.time_col is not None,
             gap_after_periods=src.gap_after_periods,

@@ -37,6 +37,8 @@ log = logging.getLogger(__name__)
 #: Bytes that may appear in a numeric CSV block.
 _CSV_BYTES = b"0123456789.-+eE, \t\r\n"
 _KV_SPLIT = re.compile(r"[\s,;]+")
+#: Name of the extra last column holding host receive times (see :meth:`LineParser.feed_lines`).
+HOST_T = "_host_t"
 #: Bad-line examples kept per parser for messages.
 MAX_EXAMPLES = 5
 
@@ -48,6 +50,8 @@ class Parsed:
     rows: np.ndarray
     bad: int = 0
     examples: list[str] = field(default_factory=list)
+    #: line number (1-based, over the whole stream) of each row
+    lines: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
 
 
 class LineParser:
@@ -99,6 +103,23 @@ class LineParser:
             out.bad += extra.bad
             out.examples += extra.examples
         return out
+
+    def feed_lines(self, lines: list[bytes], times: np.ndarray) -> Parsed:
+        """Parse complete lines (already split and length-checked, e.g. by the serial framer)
+        and append each row's host receive time from ``times`` as a last column."""
+        first = self.lines + 1
+        if not lines:
+            return self._with_times(self._empty(), times, first)
+        body = b"\n".join(lines) + b"\n"
+        return self._with_times(self._parse_block(body), np.asarray(times, np.float64), first)
+
+    def _with_times(self, p: Parsed, times: np.ndarray, first: int) -> Parsed:
+        t = times[p.lines - first] if p.lines.size else np.empty(0)
+        rows = p.rows if p.rows.size or self.columns is None else p.rows.reshape(-1, self.ncols)
+        if rows.shape[0] == 0:
+            rows = np.empty((0, self.ncols))
+        p.rows = np.column_stack((rows, t)) if rows.shape[0] else np.empty((0, self.ncols + 1))
+        return p
 
     def flush(self) -> Parsed:
         """End of stream: parse a last line that had no newline."""
@@ -241,10 +262,11 @@ class LineParser:
         cols = [self.columns.index(c) for c in self.needed if c in self.columns]
         sub = rows[:, cols] if cols else rows
         fin = np.isfinite(sub).all(axis=1)
+        numbers = np.asarray(numbers, dtype=np.int64)
         if fin.all():
-            return Parsed(rows)
-        out = Parsed(rows[fin])
-        for no in np.asarray(numbers)[~fin][: MAX_EXAMPLES + 1].tolist():
+            return Parsed(rows, lines=numbers)
+        out = Parsed(rows[fin], lines=numbers[fin])
+        for no in numbers[~fin][: MAX_EXAMPLES + 1].tolist():
             if len(self.examples) < MAX_EXAMPLES:
                 msg = f"line {no}: NaN or infinite number"
                 self.examples.append(msg)
@@ -259,6 +281,7 @@ class LineParser:
         cols = self.columns or []
         out = self._empty()
         rows: list[list[float]] = []
+        numbers: list[int] = []
         for line in body.split(b"\n")[:-1]:
             self.lines += 1
             s = line.strip()
@@ -281,8 +304,9 @@ class LineParser:
                 self._note_bad(out, self.lines, "NaN or infinite number")
                 continue
             rows.append(row)
+            numbers.append(self.lines)
         arr = np.array(rows, dtype=np.float64).reshape(len(rows), len(cols))
-        return Parsed(arr, out.bad, out.examples)
+        return Parsed(arr, out.bad, out.examples, np.asarray(numbers, dtype=np.int64))
 
 
 def _loadtxt(block: bytes, ncols: int) -> np.ndarray | None:
