@@ -161,9 +161,10 @@ class ChannelConditioner:
         return out
 
     def _state(self, i: int, t: float, level: int, value: float) -> Tagged:
-        # The sample time itself: the prefilter starts from a steady state, so there is no
-        # delay to take back before the first decision.
-        rec = records.state(self.name, t, self.output_level(level), value)
+        # Delay-compensated like the edges, so that an edge never precedes its state (an edge's
+        # crossing lies after the first decisive sample); with a prefilter the state's time may
+        # therefore lie up to the filter delay before the first sample.
+        rec = records.state(self.name, t - self.delay_s, self.output_level(level), value)
         return (i, RANK_STATE, rec)
 
     def _edges(
@@ -178,6 +179,34 @@ class ChannelConditioner:
             out.append((i, RANK_EDGE, records.edge(self.name, tt, lv, vv, self.seq)))
         self.stats.add_edges(tcs, levs)
         return out
+
+    # -- state that outlives a run ------------------------------------------------------------
+    def snapshot(self) -> dict[str, Any]:
+        """What must survive a daemon restart: the edge numbering and the current level."""
+        return {"seq": self.seq, "level": self.dwell.level}
+
+    def restore(self, state: dict[str, Any]) -> None:
+        """Continue the numbering and the level of an earlier run (a restart)."""
+        self.seq = int(state.get("seq", 0))
+        level = int(state.get("level", -1))
+        if level in (0, 1):
+            self.dwell.level = level
+
+    def adopt(self, old: "ChannelConditioner") -> None:
+        """Take over a running channel's state on a config reload: numbering, level and last
+        sample always; the filter's state when the filter is unchanged; the noise tracker when
+        its window is unchanged; the band's current thresholds when the band is unchanged."""
+        self.seq = old.seq
+        self.edges = old.edges
+        self.dwell = copy.copy(old.dwell)
+        if old.cfg.filter == self.cfg.filter and old.period == self.period:
+            self.filter = old.filter
+        if old.cfg.band == self.cfg.band:
+            self.band = old.band
+            self.noise = old.noise
+            self._pending_noise = old._pending_noise
+        else:
+            self.dwell.pend_class = -1  # a dwell candidate judged by the old band is void
 
     def copy(self) -> "ChannelConditioner":
         new = copy.copy(self)

@@ -46,6 +46,8 @@ class Pipeline:
             gap_after_periods=src.gap_after_periods,
         )
         self.channels: list[ChannelConditioner] | None = None
+        self._restore: dict[str, dict[str, Any]] = {}
+        self._adopt: dict[str, ChannelConditioner] = {}
         self._held = np.empty((0, len(self.columns)))
         self.samples = 0  # samples passed to the channels so far
         self.gaps = 0
@@ -68,6 +70,12 @@ class Pipeline:
                 msg = str(e)
                 msg = msg.replace("{at}", f"channel[{i}]") if "{at}" in msg else f"channel[{i}].filter: {msg}"
                 raise ConfigError([msg]) from None
+        for ch in channels:
+            if ch.name in self._adopt:
+                ch.adopt(self._adopt[ch.name])
+            elif ch.name in self._restore:
+                ch.restore(self._restore[ch.name])
+        self._adopt.clear()
         self.channels = channels
 
     def process(self, rows: np.ndarray) -> list[dict[str, Any]]:
@@ -117,6 +125,36 @@ class Pipeline:
                 held, self._held = self._held, np.empty((0, len(self.columns)))
                 out = self.process(held)
         return out
+
+    # -- state across restarts and reloads -----------------------------------------------------
+    def restore(self, state: dict[str, dict[str, Any]]) -> None:
+        """Per-channel state saved by an earlier run (applied when the channels start)."""
+        self._restore = dict(state)
+        if self.channels is not None:
+            for ch in self.channels:
+                if ch.name in state:
+                    ch.restore(state[ch.name])
+
+    def snapshot(self) -> dict[str, dict[str, Any]]:
+        """Per-channel state to save; channels not started yet keep what was restored."""
+        out = dict(self._restore)
+        for ch in self.channels or []:
+            out[ch.name] = ch.snapshot()
+        return out
+
+    def adopt(self, old: "Pipeline") -> None:
+        """Continue from a running pipeline after a config reload: the time base (same source)
+        and, for every channel whose name is unchanged, its state (see
+        :meth:`ChannelConditioner.adopt`)."""
+        if old.columns == self.columns and old.time_col == self.time_col:
+            self.timebase = old.timebase
+            self._held = old._held
+        self.samples, self.gaps, self.last_t = old.samples, old.gaps, old.last_t
+        self._restore = {k: v for k, v in old.snapshot().items()}
+        names = {c.name for c in self.cfg.channel}
+        self._adopt = {c.name: c for c in (old.channels or []) if c.name in names}
+        if self.timebase.ready:
+            self._start_channels()
 
     def edges_by_channel(self) -> dict[str, int]:
         return {c.name: c.edges for c in self.channels or []} or {
