@@ -26,6 +26,7 @@ The same pipeline conditions a live serial stream and replays recordings."""
 EPILOG = """\
 examples:
   streamcond check -c config/orchard_pump.toml
+  streamcond run -c /etc/streamcond/site.toml
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml --events -
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl
@@ -82,6 +83,26 @@ def build_parser() -> argparse.ArgumentParser:
 
     def cmd(name: str, help_: str, desc: str) -> argparse.ArgumentParser:
         return sub.add_parser(name, help=help_, description=desc, formatter_class=_Formatter)
+
+    d = cmd(
+        "run",
+        "the daemon: condition a serial stream and publish the events",
+        "Read the serial stream named in the config, condition it, write records to\n"
+        "output.events and publish them to MQTT (output.mqtt) through a durable spool.\n"
+        "SIGHUP reloads the config; SIGTERM or SIGINT stop cleanly.",
+    )
+    d.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+
+    rec = cmd(
+        "record",
+        "capture raw serial lines for later replay",
+        "Capture the raw serial lines with their host receive times; `streamcond replay CAPTURE`\n"
+        "runs them through the same parser and core as the live daemon.",
+    )
+    rec.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    rec.add_argument("-o", "--output", required=True, metavar="CAPTURE", help="capture file to write")
+    rec.add_argument("--duration", type=_positive_float, metavar="S",
+                     help="stop after S seconds (default: until SIGINT/SIGTERM)")
 
     r = cmd(
         "replay",
@@ -178,8 +199,10 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def _setup_logging(verbose: int) -> None:
-    level = logging.WARNING - 10 * min(verbose, 2)
+def _setup_logging(verbose: int, command: str | None = None) -> None:
+    # the daemon logs its life cycle at INFO (journald collects stderr); the tools are quiet
+    base = logging.INFO if command in ("run", "record") else logging.WARNING
+    level = base - 10 * min(verbose, 2)
     logging.basicConfig(level=level, format="streamcond: %(levelname)s: %(message)s", stream=sys.stderr)
 
 
@@ -194,13 +217,21 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
-    _setup_logging(args.verbose)
+    _setup_logging(args.verbose, args.command)
     if args.command is None:
         parser.print_help()
         return EXIT_USAGE
     try:
         if args.command == "replay":
             return _replay(args)
+        if args.command == "run":
+            from .daemon import run
+
+            return run(args.config)
+        if args.command == "record":
+            from .record import main as record_main
+
+            return record_main(args)
         if args.command == "check":
             return _check(args)
         if args.command == "tune":

@@ -248,7 +248,9 @@ class Mqtt(_Model):
 
 
 class Output(_Model):
-    events: str = "-"
+    events: str = "-"  # "" = no events file (e.g. a daemon that only publishes)
+    #: Channel state (seq, levels) of the live daemon when there is no MQTT spool to hold it.
+    state_path: str = "state/streamcond.sqlite"
     mqtt: Mqtt | None = None
 
 

@@ -181,7 +181,7 @@ class JsonlWriter:
         self.flush_each = flush_each
         self._own = False
         self.fh: TextIO | None
-        if target is None:
+        if not target:  # None or "": no events output
             self.fh = None
         elif target == "-":
             self.fh = sys.stdout
