@@ -196,6 +196,70 @@ class Dwell(_Model):
     fall_s: float = Field(0.0, ge=0)
 
 
+RATE_PER_S = {"s": 1.0, "min": 60.0, "h": 3600.0}
+
+
+class Measure(_Model):
+    """What a channel's edges mean: frequency, duty, counts (a ``measure`` record per stats
+    window, optionally one per rising edge)."""
+
+    frequency: bool = True
+    duty: bool = True
+    count: bool = True
+    #: also a record at every rising edge (instantaneous period and frequency)
+    per_edge: bool = False
+    #: K-factor: pulses per unit of quantity (a flow meter's pulses per litre)
+    pulses_per_unit: float | None = Field(None, gt=0)
+    #: name of that quantity's unit ("L", "m3", "kWh")
+    quantity_unit: str = ""
+    #: pulses per revolution of a shaft: gives a speed in rpm
+    pulses_per_rev: float | None = Field(None, gt=0)
+    #: the rate is given per "s", "min" or "h" (default "min": L/min, rpm)
+    rate_per: Literal["s", "min", "h"] = "min"
+    #: no rising edge for longer than this: the rate is 0 (a stopped shaft is 0 rpm)
+    stale_s: float = Field(2.0, gt=0)
+
+    @model_validator(mode="after")
+    def _one_scale(self) -> "Measure":
+        if self.pulses_per_unit is not None and self.pulses_per_rev is not None:
+            raise ValueError("{at} takes pulses_per_unit or pulses_per_rev, not both")
+        return self
+
+
+#: Named fault presets. NAMUR NE 43 (from memory): 3.8–20.5 mA is measurement, ≤ 3.6 mA or
+#: ≥ 21.0 mA signals a failed transmitter; between those is out of range but not a failure.
+FAULT_PRESETS: dict[str, tuple[float, float]] = {"namur_ne43": (3.6, 21.0)}
+
+
+class Fault(_Model):
+    """Raw values (before gain/offset) at or beyond which the sample is a sensor fault, not a
+    level: while in fault the comparator holds its level and fires no edges."""
+
+    preset: Literal["namur_ne43"] | None = None
+    at_or_below: float | None = None
+    at_or_above: float | None = None
+
+    @model_validator(mode="after")
+    def _limits(self) -> "Fault":
+        if self.preset is not None:
+            if self.at_or_below is not None or self.at_or_above is not None:
+                raise ValueError("{at} takes a preset or at_or_below/at_or_above, not both")
+        elif self.at_or_below is None and self.at_or_above is None:
+            raise ValueError("{at} needs a preset or at least one of at_or_below, at_or_above")
+        lo, hi = self.limits
+        if lo > -math.inf and hi < math.inf and not lo < hi:
+            raise ValueError("{at}.at_or_below must be below {at}.at_or_above")
+        return self
+
+    @property
+    def limits(self) -> tuple[float, float]:
+        if self.preset is not None:
+            return FAULT_PRESETS[self.preset]
+        lo = self.at_or_below if self.at_or_below is not None else -math.inf
+        hi = self.at_or_above if self.at_or_above is not None else math.inf
+        return lo, hi
+
+
 class Channel(_Model):
     name: str = Field(pattern=NAME_PATTERN)
     column: str | None = None
@@ -207,6 +271,8 @@ class Channel(_Model):
     band: BandSpec
     dwell: Dwell = Field(default_factory=Dwell)
     compensate_delay: bool = True
+    measure: Measure | None = None
+    fault: Fault | None = None
 
     @property
     def source_column(self) -> str:

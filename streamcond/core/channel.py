@@ -27,8 +27,11 @@ from .stats import ChannelStats
 
 #: Emission order of records of one channel at the same sample.
 RANK_STATS = 0
-RANK_STATE = 1
-RANK_EDGE = 2
+RANK_MEASURE = 1
+RANK_FAULT = 2
+RANK_STATE = 3
+RANK_EDGE = 4
+RANK_EDGE_MEASURE = 5
 
 Tagged = tuple[int, int, dict[str, Any]]  # (sample index in block, rank, record)
 
@@ -68,12 +71,22 @@ class ChannelConditioner:
             window_s = max(stats.noise_window_s, MIN_SAMPLES / sample_rate_hz)
             self.noise = NoiseTracker(sample_rate_hz, window_s, update_every=every)
         self.stats = ChannelStats(
-            cfg.name, stats.interval_s, self.band.center, stats.chatter_window_s, stats.chatter_count
+            cfg.name, stats.interval_s, self.band.center, stats.chatter_window_s,
+            stats.chatter_count, period_s=self.period,
         )
         self.rise_s = float(cfg.dwell.rise_s)
         self.fall_s = float(cfg.dwell.fall_s)
         self.dwell = DwellState()
         self._pending_noise: tuple[float, float] | None = None
+        self.fault_limits = cfg.fault.limits if cfg.fault is not None else None
+        self.in_fault = False
+        self.fault_t0 = float("nan")
+        if cfg.measure is not None:
+            from .measures import MeasureTracker
+
+            self.measure: Any = MeasureTracker(cfg.name, cfg.measure)
+        else:
+            self.measure = None
         self.seq = 0  # last seq issued
         self.edges = 0  # edges emitted in this run
 
@@ -92,17 +105,39 @@ class ChannelConditioner:
             return []
         raw = np.asarray(raw, dtype=np.float64)
         v = raw * self.gain + self.offset if (self.gain != 1.0 or self.offset != 0.0) else raw
-        y = self.filter.process(v)
-        # events inside the block: (sample index, order, payload)
+        # events inside the block: (sample index, order, payload); at one index: the stats
+        # window closes first, then a fault starts or ends, then a noise estimate applies
         events: list[tuple[int, int, Any]] = []
+        if self.fault_limits is not None:
+            lo, hi = self.fault_limits
+            bad = (raw <= lo) | (raw >= hi)
+            flips = np.flatnonzero(bad[1:] != bad[:-1]) + 1
+            if bool(bad[0]) != self.in_fault:
+                flips = np.concatenate((np.zeros(1, np.int64), flips))
+            for k in flips.tolist():
+                events.append((k, 1, bool(bad[k])))
+            good = np.flatnonzero(~bad) if bad.any() else None
+        else:
+            good = None
+        if good is None:
+            y = self.filter.process(v)
+            yg = y
+        else:
+            # fault samples are not levels: the filter, the noise estimate and the comparator
+            # never see them
+            y = np.full(n, np.nan)
+            yg = self.filter.process(v[good])
+            y[good] = yg
         if self._pending_noise is not None:
             # an estimate that completed on the previous block's last sample
-            events.append((0, 1, self._pending_noise))
+            events.append((0, 2, self._pending_noise))
             self._pending_noise = None
-        idx, sig, nu0 = self.noise.process(y)
+        idx, sig, nu0 = self.noise.process(yg)
+        if good is not None:
+            idx = good[idx]
         for i, s_, n_ in zip(idx.tolist(), sig.tolist(), nu0.tolist()):
             if i + 1 < n:
-                events.append((i + 1, 1, (s_, n_)))  # the estimate includes sample i
+                events.append((i + 1, 2, (s_, n_)))  # the estimate includes sample i
             else:
                 self._pending_noise = (s_, n_)  # applies from the next block's first sample
         for j in self.stats.boundaries(t):
@@ -115,14 +150,46 @@ class ChannelConditioner:
                 out.extend(self._segment(t, v, y, a, k))
                 a = k
             if order == 0:
-                rec = self.stats.close(float(t[k]), self.band.low, self.band.high)
-                if rec is not None:
-                    out.append((k, RANK_STATS, rec))
+                out.extend(self._close_window(k, float(t[k])))
+            elif order == 1:
+                out.append(self._fault_change(k, float(t[k]), float(raw[k]), payload))
             else:
                 self._apply_noise(payload, y, k)
         if a < n:
             out.extend(self._segment(t, v, y, a, n))
         return out
+
+    def _close_window(self, k: int, t_next: float) -> list[Tagged]:
+        out: list[Tagged] = []
+        t0, t1 = self.stats.window_bounds()
+        fault_s = self.stats.fault_s
+        rec = self.stats.close(t_next, self.band.low, self.band.high)
+        if rec is not None:
+            out.append((k, RANK_STATS, rec))
+            if self.measure is not None:
+                lv = self.dwell.level
+                m = self.measure.close(t0, t1, self.output_level(lv) if lv in (0, 1) else -1, fault_s)
+                if m is not None:
+                    out.append((k, RANK_MEASURE, m))
+        return out
+
+    def _fault_change(self, k: int, t: float, value: float, starts: bool) -> Tagged:
+        lo, hi = self.fault_limits  # type: ignore[misc]
+        st = self.dwell
+        if starts:
+            self.in_fault = True
+            self.fault_t0 = t
+            # no interpolation across the fault, and a dwell candidate is void
+            st.prev_t = st.prev_x = float("nan")
+            st.pend_class = -1
+            why = f"at or below {lo:g}" if value <= lo else f"at or above {hi:g}"
+            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "start",
+                   "value": value, "reason": f"raw value {why}: a sensor fault, not a level"}
+        else:
+            self.in_fault = False
+            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "end",
+                   "value": value, "duration_s": t - self.fault_t0}
+        return (k, RANK_FAULT, rec)
 
     def _apply_noise(self, est: tuple[float, float], y: np.ndarray, k: int) -> None:
         """A new noise estimate, in force from sample ``k`` of the block."""
@@ -133,6 +200,10 @@ class ChannelConditioner:
 
     def _segment(self, t: np.ndarray, v: np.ndarray, y: np.ndarray, a: int, b: int) -> list[Tagged]:
         """Run the comparator over samples [a, b) with the band in force."""
+        if self.in_fault:
+            # the level is held; the time counts as fault time in the stats
+            self.stats.add_fault(b - a)
+            return []
         ts, ys = t[a:b], y[a:b]
         low, high = self.band.low, self.band.high
         st = self.dwell
@@ -178,12 +249,22 @@ class ChannelConditioner:
             self.edges += 1
             out.append((i, RANK_EDGE, records.edge(self.name, tt, lv, vv, self.seq)))
         self.stats.add_edges(tcs, levs)
+        if self.measure is not None:
+            per_edge = self.measure.edges(tcs, levs)
+            if per_edge:
+                # a per-edge measure belongs to the rising edge that completed its period
+                at = {t_: i for i, t_ in zip(emit.tolist(), tcs)}
+                for m in per_edge:
+                    out.append((at.get(m["t"], int(emit[-1])), RANK_EDGE_MEASURE, m))
         return out
 
     # -- state that outlives a run ------------------------------------------------------------
     def snapshot(self) -> dict[str, Any]:
         """What must survive a daemon restart: the edge numbering and the current level."""
-        return {"seq": self.seq, "level": self.dwell.level}
+        snap: dict[str, Any] = {"seq": self.seq, "level": self.dwell.level}
+        if self.measure is not None:
+            snap["measure"] = self.measure.snapshot()
+        return snap
 
     def restore(self, state: dict[str, Any]) -> None:
         """Continue the numbering and the level of an earlier run (a restart)."""
@@ -191,6 +272,8 @@ class ChannelConditioner:
         level = int(state.get("level", -1))
         if level in (0, 1):
             self.dwell.level = level
+        if self.measure is not None and "measure" in state:
+            self.measure.restore(state["measure"])
 
     def adopt(self, old: "ChannelConditioner") -> None:
         """Take over a running channel's state on a config reload: numbering, level and last
@@ -199,6 +282,9 @@ class ChannelConditioner:
         self.seq = old.seq
         self.edges = old.edges
         self.dwell = copy.copy(old.dwell)
+        self.in_fault, self.fault_t0 = old.in_fault, old.fault_t0
+        if self.measure is not None and old.measure is not None:
+            self.measure.restore(old.measure.snapshot())
         if old.cfg.filter == self.cfg.filter and old.period == self.period:
             self.filter = old.filter
         if old.cfg.band == self.cfg.band:
@@ -215,4 +301,6 @@ class ChannelConditioner:
         new.noise = self.noise.copy()
         new.stats = self.stats.copy()
         new.dwell = copy.copy(self.dwell)
+        if self.measure is not None:
+            new.measure = self.measure.copy()
         return new

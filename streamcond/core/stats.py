@@ -21,6 +21,8 @@ Fields and where their numbers come from:
   second; with h the half-width this is the rate of false threshold crossings for a signal
   resting at the band centre, an upper bound on false edges (a false edge needs the noise to
   carry the signal past a threshold, and a full false cycle past both).
+* ``fault_s`` — time of the window spent in sensor fault (samples at or beyond the channel's
+  ``fault`` limits, which are not levels); ``samples`` counts the other samples.
 * ``chattering`` — ``chatter_count`` or more activations (rising edges of the output level)
   within ``chatter_window_s``: the common alarm-management criterion of three or more
   activations of one alarm within one minute (ISA-18.2 practice, from memory).
@@ -48,7 +50,9 @@ class ChannelStats:
         center: float,
         chatter_window_s: float = 60.0,
         chatter_count: int = 3,
+        period_s: float = 0.0,
     ) -> None:
+        self.period = float(period_s)  # nominal sample period (fault time from sample counts)
         self.channel = channel
         self.interval = float(interval_s)
         self.center = float(center)
@@ -63,6 +67,7 @@ class ChannelStats:
         self.nu0 = math.nan
 
     def _reset_counts(self) -> None:
+        self.fault_samples = 0
         self.samples = 0
         self.raw = 0
         self.edges = 0
@@ -90,10 +95,23 @@ class ChannelStats:
             start = j
         return out
 
+    def window_bounds(self) -> tuple[float, float]:
+        assert self.window is not None
+        return self.window * self.interval, (self.window + 1) * self.interval
+
+    def add_fault(self, samples: int) -> None:
+        """Samples of the window that were sensor faults (not levels)."""
+        self.fault_samples += samples
+
+    @property
+    def fault_s(self) -> float:
+        # from the integer count, so the figure does not depend on how blocks were cut
+        return self.fault_samples * self.period
+
     def close(self, t_next: float, low: float, high: float) -> dict[str, Any] | None:
         """Emit the record of the current window (at the sample ``t_next``), start the next."""
         assert self.window is not None
-        rec = self._record(low, high) if self.samples else None
+        rec = self._record(low, high) if (self.samples or self.fault_samples) else None
         self.window = math.floor(t_next / self.interval)
         self._reset_counts()
         return rec
@@ -124,6 +142,7 @@ class ChannelStats:
             "margin_sigma": margin,
             "predicted_false_rate_per_hour": rate,
             "chattering": self.chattering,
+            "fault_s": self.fault_s,
         }
 
     # -- accumulation -------------------------------------------------------------------------

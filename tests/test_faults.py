@@ -1,0 +1,89 @@
+"""Sensor faults: samples at or beyond the fault limits are not levels."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from streamcond.config import config_from_dict, load_config
+from streamcond.core.pipeline import Pipeline
+from streamcond.replay import run_replay
+
+ROOT = Path(__file__).resolve().parent.parent
+TRUTH = json.loads((ROOT / "replay_data" / "orchard_pump.truth.json").read_text())
+
+
+def cfg(**ch) -> dict:
+    base = {"name": "lvl", "column": "x", "band": {"low": 11.0, "high": 13.0}, "fault": {"preset": "namur_ne43"}}
+    base.update(ch)
+    return {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0}, "channel": [base]}
+
+
+def run(c: dict, t, x, chunk=None) -> list[dict]:
+    p = Pipeline(config_from_dict(c), ["t", "x"])
+    rows = np.column_stack([t, x])
+    step = chunk or len(rows)
+    out: list[dict] = []
+    for a in range(0, len(rows), step):
+        out += p.process(rows[a : a + step])
+    return out
+
+
+@pytest.mark.parametrize(
+    "ma, fault",
+    # NAMUR NE 43 (from memory): 3.8–20.5 mA measurement; <= 3.6 mA or >= 21.0 mA failure
+    [(3.5, True), (21.5, True), (3.6, True), (21.0, True), (3.9, False), (20.4, False), (12.0, False)],
+)
+def test_ne43_classification(ma, fault):
+    t = np.arange(0, 2.0, 0.01)
+    x = np.full(t.size, 12.0)
+    x[100:150] = ma
+    recs = run(cfg(), t, x)
+    faults = [r for r in recs if r["kind"] == "fault"]
+    assert bool(faults) == fault
+    if fault:
+        assert [f["state"] for f in faults] == ["start", "end"]
+        assert faults[0]["t"] == pytest.approx(1.0) and faults[1]["duration_s"] == pytest.approx(0.5)
+
+
+def test_level_held_and_no_edges_during_fault():
+    # high (14 mA), then a broken wire (2 mA) for 1 s, then high again: a fault, no edges;
+    # without the fault limits the same data gives a falling and a rising edge
+    t = np.arange(0, 3.0, 0.01)
+    x = np.where((t >= 1.0) & (t < 2.0), 2.0, 14.0)
+    with_fault = run(cfg(), t, x)
+    assert [r["kind"] for r in with_fault if r["kind"] != "stats"] == ["state", "fault", "fault"]
+    c = cfg()
+    del c["channel"][0]["fault"]
+    without = run(c, t, x)
+    assert sum(r["kind"] == "edge" for r in without) == 2
+
+
+def test_fault_records_do_not_depend_on_chunking():
+    rng = np.random.default_rng(2)
+    t = np.arange(0, 30.0, 0.01)
+    x = 12 + 2 * np.sign(np.sin(2 * np.pi * 0.2 * t)) + 0.1 * rng.standard_normal(t.size)
+    x[700:900] = 2.5
+    x[1500:1510] = 22.0
+    c = cfg(filter={"kind": "median", "window": 5})
+    whole = run(c, t, x)
+    for chunk in (1, 13, 256):
+        assert run(c, t, x, chunk) == whole
+    stats = [r for r in whole if r["kind"] == "stats"]
+    assert sum(s["fault_s"] for s in stats) == pytest.approx((200 + 10) * 0.01)
+
+
+def test_demo_fault_episode(tmp_path):
+    text = (ROOT / "config" / "orchard_pump.toml").read_text()
+    text = text.replace('column = "level_ma"\n', 'column = "level_ma"\nfault = { preset = "namur_ne43" }\n', 1)
+    p = tmp_path / "c.toml"
+    p.write_text(text)
+    res = run_replay(load_config(p), ROOT / "replay_data" / "orchard_pump.csv", keep_records=True)
+    faults = [r for r in res.records if r["kind"] == "fault" and r["channel"] == "tank_high"]
+    truth = TRUTH["fault"]
+    assert [f["state"] for f in faults] == ["start", "end"]
+    assert faults[0]["t"] == pytest.approx(truth["t_start"], abs=0.01)
+    assert faults[1]["t"] == pytest.approx(truth["t_end"], abs=0.01)
