@@ -256,7 +256,7 @@ class SerialSource:
     Logging is rate-limited: the loss once, then "still waiting" at most once per
     ``log_every_s``, and the return once.
 
-    ``stop()`` ends the thread at once (pyserial's ``cancel_read`` wakes a blocked read, an
+    ``stop()`` ends the thread at once (pyserial's ``cancel_read`` wakes a blocked read, a
     :class:`threading.Event` wakes a backoff wait) and the thread closes the port.
     """
 
