@@ -11,7 +11,10 @@ What it does, in the order the report shows it:
    (:data:`SWEEP_BASE_POINTS` points) and on with the same ratio until the band is wider than
    the signal's smaller excursion past the centre (where no edge can fire any more): the
    plateau's upper end is set by the signal's steps, not by the noise, and is needed to keep a
-   margin from it. Each width gets the edge count of the bare band on this recording (the
+   margin from it. When the count is already stable at the narrowest width, the sweep goes on
+   downward with the same ratio until the chatter starts (or a limit is reached: fast, clean
+   steps need not chatter at any width). Each width gets the edge count of the bare band on
+   this recording (the
    comparator kernel, :func:`~streamcond.core.comparator.hysteresis`), with the channel's dwell
    too when it has one, and the false-edge rate Rice's formula predicts (below).
 4. **The plateau**: the longest run of consecutive sweep widths that give the same non-zero
@@ -74,7 +77,8 @@ log = logging.getLogger(__name__)
 
 #: Default acceptable false-edge rate from noise alone, per hour: one a day (module docstring).
 DEFAULT_TARGET_RATE_PER_HOUR: float = 1.0 / 24.0
-#: Wording for ``--target-rate``'s help and the report.
+#: Wording for ``--target-rate``'s help in cli.py (which imports nothing heavy at start-up, so
+#: it carries its own copy of this sentence).
 TARGET_RATE_HELP = (
     "acceptable false edges per hour from noise alone, by Rice's formula for a signal resting "
     "at the band centre (an upper bound); default 1/24: one a day"
@@ -90,6 +94,16 @@ SWEEP_MAX_POINTS: int = 400
 #: Fewest consecutive sweep points with the same count that make a plateau (a width ratio of
 #: about 1.068³ ≈ 1.22).
 MIN_PLATEAU_POINTS: int = 4
+#: A plateau ending below this many σ̂ means real steps smaller than ±2σ̂ were counted cleanly,
+#: which Gaussian noise of that σ̂ would not allow: the estimate is then suspect (a warning).
+PLAUSIBLE_PLATEAU_SIGMA: float = 4.0
+#: When the plateau reaches down to the narrowest width swept, the sweep goes on downward with
+#: the same ratio for at most this many points, down to at most reach·DOWN_LIMIT.
+DOWN_MAX_POINTS: int = 120
+DOWN_LIMIT: float = 1e-5
+#: The adaptive alternative is replayed on at most this many samples (its noise tracker is the
+#: costly part of tune: one whole-window estimate per window_s/10).
+ADAPTIVE_CHECK_SAMPLES: int = 300_000
 #: Half-width kept inside each end of the plateau, in units of σ̂. Both ends are set by the
 #: largest noise excursions of this recording; three sigmas more is our choice of margin
 #: (common practice, no published source).
@@ -126,18 +140,41 @@ def rice_min_width(sigma: float, nu0_hz: float, rate_per_hour: float) -> float:
 
 @dataclass
 class ChannelData:
-    """One channel of a recording, as the pipeline sees it."""
+    """One channel of a recording, as the pipeline sees it.
+
+    With a ``fault`` setting, samples whose raw value is at or beyond the fault limits are not
+    levels: as in the channel chain, the prefilter, the noise estimate and the comparator see
+    only the other samples (``good``), and ``y`` is NaN at the fault samples.
+    """
 
     cfg: Config
     channel: Channel
     t: np.ndarray  # sample time, s (after the timebase: strictly increasing)
     raw: np.ndarray  # the recording's column, as read
     v: np.ndarray  # scaled: gain·raw + offset
-    y: np.ndarray  # scaled and prefiltered (what the comparator sees)
+    y: np.ndarray  # scaled and prefiltered (what the comparator sees); NaN at fault samples
     fs: float
     delay_s: float  # the prefilter's DC delay (0 unless compensate_delay)
     bad_lines: int = 0
     gaps: int = 0
+    good: np.ndarray | None = None  # indices of the samples that are not faults (None: all)
+    fault_samples: int = 0
+
+    @property
+    def yg(self) -> np.ndarray:
+        """The conditioned samples the comparator sees (faults left out)."""
+        return self.y if self.good is None else self.y[self.good]
+
+    @property
+    def tg(self) -> np.ndarray:
+        return self.t if self.good is None else self.t[self.good]
+
+    @property
+    def segment_starts(self) -> np.ndarray:
+        """Indices into ``yg`` where a stretch after a fault begins."""
+        if self.good is None:
+            return np.empty(0, dtype=np.int64)
+        return np.flatnonzero(np.diff(self.good) > 1) + 1
 
 
 def pick_channel(cfg: Config, name: str, config_path: str = "the config") -> Channel:
@@ -151,27 +188,49 @@ def pick_channel(cfg: Config, name: str, config_path: str = "the config") -> Cha
 
 
 def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> ChannelData:
-    """Read ``channel`` of ``recording`` through the replay's parser, timebase and prefilter."""
+    """Read ``channel`` of ``recording`` through the replay's parser, timebase and prefilter.
+
+    Plain recordings and captures made by ``streamcond record`` are read as ``replay`` reads
+    them (a capture without a time in its data uses the recorded host times).
+    """
     from .core.channel import build_filter
+    from .core.noise import MIN_SAMPLES
     from .core.timebase import Timebase
+    from .io.capture import is_capture, read_capture_blocks
     from .io.recording import read_blocks
     from .replay import check_columns, make_parser
 
     parser = make_parser(cfg)
     src = cfg.source
+    capture = is_capture(recording)
+    timeless = src.time_column is None and src.sample_rate_hz is None
+    if timeless and not capture:
+        raise InputError(
+            f"The recording {str(recording)!r} carries no sample time: set source.time_column "
+            "or source.sample_rate_hz, or tune on a capture made by `streamcond record`"
+        )
+    host_time = capture and timeless
+    if capture:
+        blocks = read_capture_blocks(recording, parser, host_time)
+    else:
+        blocks = read_blocks(recording, parser)
     tcols: list[np.ndarray] = []
     vcols: list[np.ndarray] = []
     bad = 0
     checked = False
-    ti = vi = None
-    for parsed, _done, _size in read_blocks(recording, parser):
+    ti: int | None = None
+    vi = 0
+    for parsed, _done, _size in blocks:
         bad += parsed.bad
         if parser.columns is None:
             continue
         if not checked:
             check_columns(cfg, parser.columns)
             checked = True
-            ti = parser.columns.index(src.time_column) if src.time_column else None
+            if host_time:
+                ti = len(parser.columns)  # the host time rides as an extra last column
+            elif src.time_column:
+                ti = parser.columns.index(src.time_column)
             vi = parser.columns.index(channel.source_column)
         if parsed.rows.shape[0]:
             vcols.append(parsed.rows[:, vi].copy())
@@ -182,11 +241,11 @@ def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> Channe
     if not checked:
         check_columns(cfg, parser.columns)
     raw = np.concatenate(vcols) if vcols else np.empty(0)
-    raw_t = np.concatenate(tcols) if tcols else None
+    raw_t = np.concatenate(tcols) if tcols else (np.empty(0) if ti is not None else None)
     tb = Timebase(
-        time_scale=src.time_scale,
+        time_scale=1.0 if host_time else src.time_scale,
         sample_rate_hz=src.sample_rate_hz,
-        has_time_column=raw_t is not None or src.time_column is not None,
+        has_time_column=ti is not None,
         gap_after_periods=src.gap_after_periods,
     )
     if not tb.ready:
@@ -206,18 +265,30 @@ def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> Channe
         raw = raw[keep]
     assert tb.period is not None
     fs = 1.0 / tb.period
-    from .core.noise import MIN_SAMPLES
-
-    if raw.size < MIN_SAMPLES:
+    good: np.ndarray | None = None
+    if channel.fault is not None:
+        lo, hi = channel.fault.limits
+        bad_s = (raw <= lo) | (raw >= hi)
+        if bad_s.any():
+            good = np.flatnonzero(~bad_s)
+    n_good = raw.size if good is None else good.size
+    if n_good < MIN_SAMPLES:
         raise InputError(
-            f"The recording {str(recording)!r} has {raw.size} usable samples of channel "
+            f"The recording {str(recording)!r} has {n_good} usable samples of channel "
             f"{channel.name!r}; tune needs at least {MIN_SAMPLES}"
         )
     v = raw * float(channel.gain) + float(channel.offset)
     filt = build_filter(channel, fs)
-    y = filt.process(v)
+    if good is None:
+        y = filt.process(v)
+    else:
+        y = np.full(raw.size, np.nan)
+        y[good] = filt.process(v[good])
     delay = filt.delay_samples / fs if channel.compensate_delay else 0.0
-    return ChannelData(cfg, channel, t, raw, v, y, fs, delay, bad, len(gaps))
+    return ChannelData(
+        cfg, channel, t, raw, v, y, fs, delay, bad, len(gaps), good,
+        raw.size - n_good,
+    )
 
 
 # --- the sweep and the plateau -----------------------------------------------------------------
@@ -245,6 +316,49 @@ def sweep_widths(sigma: float, reach: float) -> np.ndarray:
     return SWEEP_K_MIN * sigma * ratio ** np.arange(n, dtype=np.float64)
 
 
+def _extend_down(
+    data: ChannelData,
+    center: float,
+    widths: np.ndarray,
+    edges: np.ndarray,
+    edges_dwell: np.ndarray | None,
+    reach: float,
+    plateau_edges: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Sweep below the narrowest width until the count leaves the plateau (plus two points)."""
+    ratio = float(widths[1] / widths[0])
+    rise, fall = float(data.channel.dwell.rise_s), float(data.channel.dwell.fall_s)
+    new_w: list[float] = []
+    new_e: list[int] = []
+    new_d: list[int] = []
+    w = float(widths[0])
+    after = -1
+    for _ in range(DOWN_MAX_POINTS):
+        w /= ratio
+        if w < reach * DOWN_LIMIT:
+            break
+        e = count_edges(data.yg, center, w)
+        new_w.append(w)
+        new_e.append(e)
+        if edges_dwell is not None:
+            new_d.append(
+                count_edges_dwell(data.tg, data.yg, center, w, rise, fall, data.segment_starts)
+            )
+        if after < 0 and e != plateau_edges:
+            after = 2
+        elif after > 0:
+            after -= 1
+        if after == 0:
+            break
+    if not new_w:
+        return widths, edges, edges_dwell
+    widths = np.concatenate((np.array(new_w[::-1]), widths))
+    edges = np.concatenate((np.array(new_e[::-1], dtype=np.int64), edges))
+    if edges_dwell is not None:
+        edges_dwell = np.concatenate((np.array(new_d[::-1], dtype=np.int64), edges_dwell))
+    return widths, edges, edges_dwell
+
+
 def count_edges(y: np.ndarray, center: float, width: float) -> int:
     """Edges a bare band of ``width`` around ``center`` gives on ``y`` (the initial level is
     not an edge)."""
@@ -255,15 +369,33 @@ def count_edges(y: np.ndarray, center: float, width: float) -> int:
 
 
 def count_edges_dwell(
-    t: np.ndarray, y: np.ndarray, center: float, width: float, rise_s: float, fall_s: float
+    t: np.ndarray,
+    y: np.ndarray,
+    center: float,
+    width: float,
+    rise_s: float,
+    fall_s: float,
+    segment_starts: np.ndarray | None = None,
 ) -> int:
-    """Edges with time qualification (the channel's dwell)."""
+    """Edges with time qualification (the channel's dwell).
+
+    ``segment_starts`` are the indices where a stretch after a sensor fault begins: as in the
+    channel chain, the level is held across the fault, and a dwell candidate open when the
+    fault began is void (no run is timed across a fault).
+    """
     from .core.comparator import DwellState, qualified_hysteresis
 
-    q = qualified_hysteresis(
-        t, y, center - width / 2.0, center + width / 2.0, rise_s, fall_s, DwellState()
-    )
-    return int(q.emit.size)
+    lo, hi = center - width / 2.0, center + width / 2.0
+    st = DwellState()
+    bounds = [0, *(segment_starts.tolist() if segment_starts is not None else []), y.size]
+    n = 0
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        if a > 0:
+            st.prev_t = st.prev_x = float("nan")
+            st.pend_class = -1
+        q = qualified_hysteresis(t[a:b], y[a:b], lo, hi, rise_s, fall_s, st)
+        n += int(q.emit.size)
+    return n
 
 
 @dataclass(frozen=True)
@@ -387,6 +519,7 @@ class TuneResult:
     filter_text: str = ""
     bad_lines: int = 0
     gaps: int = 0
+    fault_samples: int = 0
 
 
 def _filter_text(ch: Channel) -> str:
@@ -403,7 +536,7 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
     target = DEFAULT_TARGET_RATE_PER_HOUR if target_rate_per_hour is None else target_rate_per_hour
     if not (target > 0 and math.isfinite(target)):
         raise InputError("The target rate must be a positive number of false edges per hour")
-    y = data.y
+    y = data.yg  # the samples the comparator sees (sensor faults left out)
     est = estimate_noise(y, data.fs)
     sigma, nu0 = float(est.sigma), float(est.nu0_hz)
     if not sigma > 0:
@@ -420,11 +553,24 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
     edges_dwell = None
     if rise > 0 or fall > 0:
         edges_dwell = np.array(
-            [count_edges_dwell(data.t, y, c, w, rise, fall) for w in widths.tolist()],
+            [
+                count_edges_dwell(data.tg, y, c, w, rise, fall, data.segment_starts)
+                for w in widths.tolist()
+            ],
             dtype=np.int64,
         )
-    rates = rice_rate_per_hour(widths, sigma, nu0)
     plateau = find_plateau(widths, edges)
+    log.debug("tune %s: sigma %g, nu0 %g Hz, %d widths, plateau %s", ch.name, sigma, nu0,
+              widths.size, plateau)
+    if plateau is not None and plateau.open_below:
+        # The count is stable from the narrowest width swept: look further down for where
+        # the chatter starts, so that the plateau's lower end is known (a signal with clean,
+        # fast steps may not chatter at any width; the search then stops at its limit).
+        widths, edges, edges_dwell = _extend_down(
+            data, c, widths, edges, edges_dwell, reach, plateau.edges
+        )
+        plateau = find_plateau(widths, edges)
+    rates = rice_rate_per_hour(widths, sigma, nu0)
     w_rice = rice_min_width(sigma, nu0, target)
     configured = float(ch.band.width) if isinstance(ch.band, FixedBand) else None
     advice: list[str] = []
@@ -451,7 +597,11 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
         safe_max = plateau.width_max - m
         lo = max(w_rice, safe_min)
         if lo <= safe_max:
+            # two significant digits for a config a person reads, three when two would
+            # widen the band by more than 5 % (a leading 1), more when the plateau is tight
             w = float(_round(lo, 2, up=True))
+            if w > 1.05 * lo:
+                w = float(_round(lo, 3, up=True))
             if w > safe_max:
                 w = float(_round(lo, 4, up=True))
                 if w > safe_max:
@@ -459,25 +609,39 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
             ok = True
         else:
             ok = False
-            # the best the plateau allows: its widest safe width, or its middle when the
-            # plateau is narrower than the margins
-            w = safe_max if safe_max >= safe_min else math.sqrt(plateau.width_min * plateau.width_max)
-            w = float(_round(w, 3, up=False))
-            if w_rice > safe_max:
+            u = f" {ch.unit}" if ch.unit else ""
+            tgt = "1/24" if target_rate_per_hour is None else f"{target:g}"
+            cure = (
+                "Reduce the noise before the comparator (a stronger prefilter: a longer median "
+                "or moving average, a lower lowpass cutoff — it lowers σ̂), add a dwell "
+                "(rise_s/fall_s) so that short excursions do not count, or accept a higher rate "
+                "with --target-rate"
+            )
+            if safe_max >= safe_min:
+                # the widest safe width: the lowest false-edge rate the plateau allows
+                w = float(_round(safe_max, 3, up=False))
                 advice.append(
-                    f"No width meets both: the target of {target:g} false edges per hour needs a "
-                    f"band at least {w_rice:.3g} {ch.unit} wide ({w_rice / sigma:.1f}σ̂), but the "
-                    f"real transitions are only safe in bands up to {max(safe_max, 0):.3g} "
-                    f"{ch.unit} — the signal's steps are too small for its noise. Reduce the "
-                    f"noise before the comparator (a stronger prefilter lowers σ̂), add a dwell "
-                    f"(rise_s/fall_s) so that short excursions do not count, or accept a higher "
-                    f"rate with --target-rate; the width below is the best the plateau allows"
+                    f"No width meets both: the target of {tgt} false edges per hour needs a "
+                    f"band at least {w_rice:.3g}{u} wide ({w_rice / sigma:.1f}σ̂), but the real "
+                    f"transitions are safe only in bands up to {safe_max:.3g}{u} "
+                    f"({EDGE_MARGIN_SIGMA:g}σ̂ inside the plateau's upper end) — the signal's "
+                    f"steps are too small for its noise. {cure}. The width suggested below is "
+                    f"the widest the plateau allows"
                 )
             else:
+                # the plateau is shorter than the two margins: its middle, the width farthest
+                # (in half-width, as the margins are counted) from both of its ends
+                w = float(_round((plateau.width_min + plateau.width_max) / 2.0, 3, up=False))
+                need = (
+                    f"; the target of {tgt} false edges per hour would need at least "
+                    f"{w_rice:.3g}{u}"
+                    if w_rice > w
+                    else ""
+                )
                 advice.append(
-                    f"The plateau is too short to keep {EDGE_MARGIN_SIGMA:g}σ̂ from both of its "
-                    f"ends; the width below is its middle. A stronger prefilter or a dwell "
-                    f"would make it longer"
+                    f"The plateau ({plateau.width_min:.3g} – {plateau.width_max:.3g}{u}) is too "
+                    f"short to keep {EDGE_MARGIN_SIGMA:g}σ̂ from both of its ends{need}. The "
+                    f"width suggested below is its middle. {cure}"
                 )
         h = w / 2.0
         sug = Suggestion(
@@ -489,6 +653,15 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
             margin_low_sigma=(h - plateau.width_min / 2.0) / sigma,
             margin_high_sigma=(plateau.width_max / 2.0 - h) / sigma,
         )
+        if plateau.width_max < PLAUSIBLE_PLATEAU_SIGMA * sigma:
+            advice.append(
+                f"Read σ̂ with care: the edge count stays clean up to a band of only "
+                f"{plateau.width_max / sigma:.1f}σ̂, so the real steps are smaller than noise of "
+                f"this σ̂ would allow to be counted cleanly. The noise estimate probably "
+                f"includes the signal's own fast movement (pulses only a few samples long, fast "
+                f"transients), and the Rice rates above are then too pessimistic; size the band "
+                f"from the plateau"
+            )
         if plateau.open_above:
             advice.append(
                 "The edge count is still stable at the widest band swept; its upper end was "
@@ -521,6 +694,7 @@ def analyse(data: ChannelData, target_rate_per_hour: float | None = None) -> Tun
         filter_text=_filter_text(ch),
         bad_lines=data.bad_lines,
         gaps=data.gaps,
+        fault_samples=data.fault_samples,
     )
     if sug.width is not None:
         _recommend_and_check(data, res)
@@ -531,7 +705,10 @@ def _adaptive_window(data: ChannelData) -> float:
     from .core.noise import MIN_SAMPLES
 
     ch = data.channel
-    w = float(ch.band.window_s) if isinstance(ch.band, AdaptiveBand) else data.cfg.stats.noise_window_s
+    if isinstance(ch.band, AdaptiveBand):
+        w = float(ch.band.window_s)
+    else:
+        w = float(data.cfg.stats.noise_window_s)
     return max(w, math.ceil(MIN_SAMPLES / data.fs * 100.0) / 100.0)
 
 
@@ -561,8 +738,16 @@ def _recommend_and_check(data: ChannelData, res: TuneResult) -> None:
     adaptive_m = AdaptiveBand.model_validate(adaptive)
     res.fixed_band = fixed
     res.adaptive_band = adaptive
-    fixed_recs = _replay_channel(data, fixed_m)
-    adaptive_recs = _replay_channel(data, adaptive_m)
+    # The adaptive band re-estimates the noise every window_s/10: on a long recording that is
+    # the bulk of tune's time, so it is checked on the first ADAPTIVE_CHECK_SAMPLES samples,
+    # against the fixed band on the same stretch (fed in two blocks: chunk invariance makes
+    # that the same as one).
+    n = data.t.size
+    n_chk = min(n, ADAPTIVE_CHECK_SAMPLES)
+    fixed_cond = _conditioner(data, fixed_m)
+    head = _records(fixed_cond, data, 0, n_chk)
+    fixed_recs = head + (_records(fixed_cond, data, n_chk, n) if n_chk < n else [])
+    adaptive_recs = _records(_conditioner(data, adaptive_m), data, 0, n_chk)
     res.fixed_edge_records = [r for r in fixed_recs if r["kind"] == "edge"]
     widths = [
         r["band_high"] - r["band_low"]
@@ -574,20 +759,27 @@ def _recommend_and_check(data: ChannelData, res: TuneResult) -> None:
     ]
     res.check = {
         "fixed_edges": len(res.fixed_edge_records),
+        "plateau_edges": res.plateau.edges if res.plateau else None,
+        "adaptive_checked_until_s": float(data.t[n_chk - 1]),
+        "adaptive_checked_whole": n_chk == n,
         "adaptive_edges": sum(1 for r in adaptive_recs if r["kind"] == "edge"),
+        "fixed_edges_same_stretch": sum(1 for r in head if r["kind"] == "edge"),
         "adaptive_width_min": min(widths) if widths else None,
         "adaptive_width_max": max(widths) if widths else None,
-        "plateau_edges": res.plateau.edges if res.plateau else None,
     }
 
 
-def _replay_channel(data: ChannelData, band: FixedBand | AdaptiveBand) -> list[dict[str, Any]]:
-    """All records of the channel with ``band`` (everything else as configured)."""
+def _conditioner(data: ChannelData, band: FixedBand | AdaptiveBand) -> Any:
+    """The real channel chain with ``band`` (everything else as configured)."""
     from .core.channel import ChannelConditioner
 
     ch = data.channel.model_copy(update={"band": band})
-    cond = ChannelConditioner(ch, data.fs, data.cfg.stats)
-    return [rec for _i, _rank, rec in cond.process(data.t, data.raw)]
+    return ChannelConditioner(ch, data.fs, data.cfg.stats)
+
+
+def _records(cond: Any, data: ChannelData, a: int, b: int) -> list[dict[str, Any]]:
+    """The records ``cond`` gives for samples [a, b) of the channel."""
+    return [rec for _i, _rank, rec in cond.process(data.t[a:b], data.raw[a:b])]
 
 
 # --- output ------------------------------------------------------------------------------------
@@ -599,7 +791,7 @@ def _num(x: float | None) -> float | None:
     return float(x)
 
 
-def to_json(res: TuneResult, config_path: str | None = None) -> dict[str, Any]:
+def to_json(res: TuneResult) -> dict[str, Any]:
     """The DESIGN keys (``noise_sigma``, ``zero_upcrossing_rate_hz``, ``suggested``, ``sweep``)
     and extras."""
     s = res.suggestion
@@ -619,6 +811,7 @@ def to_json(res: TuneResult, config_path: str | None = None) -> dict[str, Any]:
         "duration_s": res.duration_s,
         "bad_lines": res.bad_lines,
         "gaps": res.gaps,
+        "fault_samples": res.fault_samples,
         "filter": res.filter_text,
         "dwell": {"rise_s": res.dwell[0], "fall_s": res.dwell[1]},
         "noise_sigma": res.sigma,
@@ -673,6 +866,8 @@ def _g(x: float | None, d: int = 3) -> str:
 def _rate(x: float) -> str:
     if not math.isfinite(x):
         return "—"
+    if x == 0:
+        return "≈ 0"
     if x >= 1e5 or (x < 1e-3 and x != 0):
         return f"{x:.1e}"
     return f"{x:.3g}"
@@ -687,6 +882,11 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
         f"({res.duration_s:.1f} s); prefilter {res.filter_text}"
         + (f"; dwell rise {res.dwell[0]:g} s, fall {res.dwell[1]:g} s" if any(res.dwell) else "")
     )
+    if res.fault_samples:
+        L.append(
+            f"{res.fault_samples:,} samples at the sensor-fault limits were left out, as the "
+            f"channel leaves them out (no filter, noise estimate or comparator sees them)."
+        )
     L.append(
         f"Noise of the conditioned signal: σ̂ = {_g(res.sigma)}{u}, zero up-crossing rate "
         f"ν0 = {_g(res.nu0_hz)} Hz. Band centre {_g(res.center, 6)}{u}."
@@ -705,7 +905,7 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
     for a, b in zip(starts, ends):
         w0, w1 = res.widths[a], res.widths[b]
         wr = f"{_g(w0)} – {_g(w1)}" if b > a else _g(w0)
-        kr = f"{w0 / res.sigma:.2f} – {w1 / res.sigma:.2f}" if b > a else f"{w0 / res.sigma:.2f}"
+        kr = f"{_g(w0 / res.sigma)} – {_g(w1 / res.sigma)}" if b > a else _g(w0 / res.sigma)
         rr = f"{_rate(res.rates[a])} – {_rate(res.rates[b])}" if b > a else _rate(res.rates[a])
         line = f"  {wr:>22}   {kr:>13}   {int(e[a]):>6}"
         if res.edges_dwell is not None:
@@ -727,9 +927,18 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
         above = " or more" if p.open_above else ""
         L.append(
             f"Plateau: every width from {_g(p.width_min)}{u}{below} to {_g(p.width_max)}{u}{above} "
-            f"({p.width_min / res.sigma:.2f}σ̂ – {p.width_max / res.sigma:.1f}σ̂) gives "
-            f"{p.edges} edges: the real transitions. Narrower bands chatter; wider ones miss "
-            f"transitions."
+            f"({_g(p.width_min / res.sigma)}σ̂ – {_g(p.width_max / res.sigma)}σ̂) gives "
+            f"{p.edges} edges: the real transitions. "
+            + (
+                "No narrower band swept chatters (the steps are fast or the noise small); "
+                if p.open_below
+                else "Narrower bands chatter; "
+            )
+            + (
+                "no wider band swept misses one."
+                if p.open_above
+                else "wider ones miss transitions."
+            )
         )
     L.append(
         f"Target: at most {tgt} from noise alone; Rice's formula asks for a width "
@@ -770,11 +979,19 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
                 f"its width ranged {_g(chk['adaptive_width_min'])} – "
                 f"{_g(chk['adaptive_width_max'])}{u}; "
             )
-        same = "as the plateau" if chk["adaptive_edges"] == chk["plateau_edges"] else (
-            f"NOT the plateau's {chk['plateau_edges']} — prefer the fixed band"
+        if chk["adaptive_checked_whole"]:
+            ref, what = chk["plateau_edges"], "the plateau"
+        else:
+            ref, what = chk["fixed_edges_same_stretch"], "the fixed band"
+            rng = f"first {chk['adaptive_checked_until_s']:.0f} s of the recording: " + rng
+        same = f"as {what}" if chk["adaptive_edges"] == ref else (
+            f"NOT the {ref} of {what} — prefer the fixed band"
         )
-        L.append(f"  (replayed: {rng}{chk['adaptive_edges']} edges, {same}.")
-        L.append("   min_width and max_width keep it inside the part of the plateau found safe here.)")
+        if "max_width" in (res.adaptive_band or {}):
+            L.append(f"  (replayed: {rng}{chk['adaptive_edges']} edges, {same}; min_width and")
+            L.append("   max_width keep it inside the part of the plateau found safe here)")
+        else:
+            L.append(f"  (replayed: {rng}{chk['adaptive_edges']} edges, {same})")
     if res.configured_width is not None and s.width is not None:
         cw = res.configured_width
         cnt = count_note = ""
@@ -784,9 +1001,10 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
         if p is not None and not (p.width_min <= cw <= p.width_max):
             count_note = " — off the plateau"
         L.append("")
+        rate_now = _rate(float(rice_rate_per_hour(cw, res.sigma, res.nu0_hz)))
         L.append(
             f"The config's present width is {_g(cw)}{u} ({cw / res.sigma:.2f}σ̂, predicted "
-            f"{_rate(float(rice_rate_per_hour(cw, res.sigma, res.nu0_hz)))} per hour{cnt}{count_note})."
+            f"{rate_now} per hour{cnt}{count_note})."
         )
     if plot_path:
         L.append("")
@@ -825,6 +1043,7 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
 
     u = res.unit or "value"
     ulab = f" ({res.unit})" if res.unit else ""
@@ -847,12 +1066,20 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
         rf"zero up-crossing rate $\nu_0$ = {_g(res.nu0_hz)} Hz; prefilter {res.filter_text}; "
         f"{res.samples:,} samples at {res.sample_rate_hz:g} Hz"
     )
+    if res.fixed_band is not None:
+        verdict = "meets" if s.meets_target else "does NOT meet"
+        sub += (
+            f"\nsuggested: band = {inline_table(res.fixed_band)} — {verdict} the target of "
+            f"{res.target_rate_per_hour:.3g} false edges per hour"
+        )
+    else:
+        sub += "\nno band suggested: the edge count never settles (see the report)"
     fig.suptitle(title + "\n" + sub, fontsize=12)
 
     # 1. the whole trace
     step = max(1, t.size // 200_000)  # enough points for the eye, not for the file size
     ax1.plot(t[::step], data.v[::step], color="0.75", lw=0.6, label="scaled input")
-    ax1.plot(ty[::step], data.y[::step], color="C0", lw=0.8, label=f"conditioned ({res.filter_text})")
+    ax1.plot(ty[::step], data.y[::step], color="C0", lw=0.8, label="conditioned")
     edges = res.fixed_edge_records
 
     def mark_edges(ax, t0: float | None = None, t1: float | None = None) -> None:
@@ -884,7 +1111,7 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     ]
     if lo is not None:
         handles += [
-            matplotlib.patches.Patch(color="C2", alpha=0.3, label=f"suggested band, width {_g(s.width, 6)}"),
+            Patch(color="C2", alpha=0.3, label=f"suggested band, width {_g(s.width, 6)}"),
             Line2D([], [], ls="", marker="^", color="C2", mec="k", label=f"rising edges ({n_up})"),
             Line2D([], [], ls="", marker="v", color="C3", mec="k", label=f"falling edges ({n_dn})"),
         ]
@@ -893,7 +1120,7 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     ax1.set_title(f"Whole recording: the edges the suggested band gives{dw}", fontsize=10)
 
     # 2. zoom on the worst chatter of a bare comparator at the centre
-    z0, z1, nflip = worst_chatter(t, data.v, c)
+    z0, z1, _densest = worst_chatter(t, data.v, c)
     sel = (t >= z0) & (t <= z1)
     sely = (ty >= z0) & (ty <= z1)
     ax2.plot(t[sel], data.v[sel], color="0.6", lw=0.8, marker=".", ms=2, label="scaled input")
@@ -906,7 +1133,7 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     ax2.axhline(c, color="k", lw=0.7, ls="--")
     mark_edges(ax2, z0, z1)
     vals = np.concatenate([vz, data.y[sely]]) if sely.any() else vz
-    ylo, yhi = float(np.min(vals)), float(np.max(vals))
+    ylo, yhi = float(np.nanmin(vals)), float(np.nanmax(vals))
     if lo is not None:
         ylo, yhi = min(ylo, lo), max(yhi, hi)
     pad = 0.08 * (yhi - ylo or 1.0)
@@ -916,18 +1143,27 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     ax2.set_ylabel(f"{res.channel}{ulab}")
     ax2.grid(alpha=0.3)
     nz = sum(1 for r in edges if z0 <= r["t"] <= z1)
-    ax2.set_title(
-        f"Zoom on the worst chatter: a bare comparator at the centre flips {nflip} times "
-        f"(red ticks); the suggested band gives {nz} edge{'s' if nz != 1 else ''}",
-        fontsize=10,
-    )
+    nflip = int(fl.size)  # the flips shown, in the same stretch as the edges counted
+    gives = f"the suggested band gives {nz} edge{'s' if nz != 1 else ''}"
+    if nflip > max(2, 1.2 * nz):
+        ztitle = (
+            f"Zoom on the worst chatter: a bare comparator at the centre flips {nflip} times "
+            f"here (red ticks); {gives}"
+        )
+    else:
+        ztitle = (
+            f"Zoom on the busiest stretch: a bare comparator at the centre flips "
+            f"{'once' if nflip == 1 else f'{nflip} times'} here (red ticks; no chatter); {gives}"
+        )
+    ax2.set_title(ztitle, fontsize=10)
     handles2 = [
         Line2D([], [], color="0.6", marker=".", lw=0.8, label="scaled input"),
         Line2D([], [], color="C0", lw=1.2, label="conditioned"),
-        Line2D([], [], color="C3", ls="", marker="|", ms=10, mew=1.2, label="bare comparator flips"),
+        Line2D([], [], color="C3", ls="", marker="|", ms=10, mew=1.2,
+               label="bare comparator flips"),
     ]
     if lo is not None:
-        handles2.append(matplotlib.patches.Patch(color="C2", alpha=0.3, label="suggested band"))
+        handles2.append(Patch(color="C2", alpha=0.3, label="suggested band"))
     ax2.legend(handles=handles2, loc="upper left", fontsize=8, framealpha=0.9)
 
     # 3. the sweep
