@@ -167,7 +167,8 @@ def build_parser() -> argparse.ArgumentParser:
         type=_positive_float,
         default=None,
         metavar="PER_HOUR",
-        help="acceptable false edges per hour from noise alone (default: see tune --help text)",
+        help="acceptable false edges per hour from noise alone, by Rice's formula for a signal "
+        "resting at the band centre (an upper bound); default 1/24: one a day",
     )
 
     c = cmd(

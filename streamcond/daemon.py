@@ -128,7 +128,8 @@ class Daemon:
     def _reset_parsing(self) -> None:
         from .io.serialsource import LineFramer
 
-        self.framer = LineFramer(self.cfg.source.max_line_bytes)
+        # resync: the first bytes after opening a port are usually the middle of a line
+        self.framer = LineFramer(self.cfg.source.max_line_bytes, resync=True)
         self.parser: LineParser = make_parser(self.cfg)
         self.pipeline: Pipeline | None = None
 
@@ -235,12 +236,14 @@ class Daemon:
                 times.append(ts)
             elif isinstance(ev, Lost):
                 flush_lines()
+                self.framer.reset()  # a half line from before the loss is not data
                 self.lost_at = ev.t_host
                 out.append({"kind": records.FAULT, "t": ev.t_host, "reason": "device_lost",
                             "detail": ev.reason, "port": self.cfg.source.port})
                 self.notifier.status(f"waiting for {self.cfg.source.port}")
             elif isinstance(ev, Back):
                 flush_lines()
+                self.framer.reset(t_start=ev.t_host, resync=True)
                 t0 = self.lost_at if self.lost_at is not None else ev.t_host
                 out.append(records.gap(t0, ev.t_host, "device_lost"))
                 self.lost_at = None

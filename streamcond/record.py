@@ -29,7 +29,7 @@ async def _record(cfg_path: str, out: str, duration: float | None) -> int:
     if cfg.source.kind != "serial" or not cfg.source.port:
         raise ConfigError('streamcond record reads a serial source: set source.kind = "serial" and source.port')
     writer = CaptureWriter(out)
-    framer = LineFramer(cfg.source.max_line_bytes)
+    framer = LineFramer(cfg.source.max_line_bytes, resync=True)
     source = SerialSource(cfg.source)
     stop = asyncio.Event()
     loop = asyncio.get_running_loop()
@@ -55,8 +55,10 @@ async def _record(cfg_path: str, out: str, duration: float | None) -> int:
                     writer.flush()
                     last_flush = time.monotonic()
             elif isinstance(ev, Lost):
+                framer.reset()
                 log.warning("device lost (%s); waiting for it to come back", ev.reason)
             elif isinstance(ev, Back):
+                framer.reset(t_start=ev.t_host, resync=True)
                 log.warning("device back")
 
     task = asyncio.create_task(pump())

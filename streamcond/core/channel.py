@@ -236,6 +236,8 @@ class ChannelConditioner:
         # crossing lies after the first decisive sample); with a prefilter the state's time may
         # therefore lie up to the filter delay before the first sample.
         rec = records.state(self.name, t - self.delay_s, self.output_level(level), value)
+        if self.measure is not None:
+            self.measure.initial(rec["t"], rec["level"])
         return (i, RANK_STATE, rec)
 
     def _edges(

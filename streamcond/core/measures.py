@@ -136,6 +136,8 @@ class MeasureTracker:
         self.since = math.nan  # start of observation: staleness reference before any rise
         self.last_edge = math.nan  # time of the latest edge (detects a time base that restarted)
         self.closed = False  # a window has been closed in this run
+        self.known_from = -math.inf  # sample time from which the level is known (initial())
+        self.known_from = -math.inf  # sample time from which the level is known (initial())
         # -- the current window --
         self._reset_window()
 
@@ -156,6 +158,14 @@ class MeasureTracker:
 
     def _rate(self, f: float | None) -> float | None:
         return None if f is None else f * self.rate_scale
+
+
+    def initial(self, t: float, level: int) -> None:
+        """The channel's first level (its ``state`` record) at sample time ``t``: the duty of
+        the window it falls in is taken over the part from ``t`` on, where the level is known."""
+        if level in (0, 1) and self.level not in (0, 1):
+            self.level = self.carry = int(level)
+            self.known_from = float(t)
 
     # -- the stream ----------------------------------------------------------------------------
     def edges(self, times: Iterable[float], levels: Iterable[int]) -> list[dict[str, Any]]:
@@ -281,6 +291,10 @@ class MeasureTracker:
     def _duty(
         self, t_start: float, t_end: float, fault_s: float, fault_high_s: float | None
     ) -> float | None:
+        if self.known_from > t_start:
+            t_start = min(self.known_from, t_end)  # the level was not known before
+        if self.known_from > t_start:
+            t_start = min(self.known_from, t_end)  # the level was not known before
         length = t_end - t_start
         fault = min(max(float(fault_s), 0.0), length) if math.isfinite(fault_s) else 0.0
         good = length - fault
