@@ -77,11 +77,10 @@ def test_fault_records_do_not_depend_on_chunking():
 
 
 def test_demo_fault_episode(tmp_path):
-    text = (ROOT / "config" / "orchard_pump.toml").read_text()
-    text = text.replace('column = "level_ma"\n', 'column = "level_ma"\nfault = { preset = "namur_ne43" }\n', 1)
-    p = tmp_path / "c.toml"
-    p.write_text(text)
-    res = run_replay(load_config(p), ROOT / "replay_data" / "orchard_pump.csv", keep_records=True)
+    # the demo config gives the tank level the NE 43 preset
+    cfg = load_config(ROOT / "config" / "orchard_pump.toml")
+    assert cfg.channel[0].fault is not None and cfg.channel[0].fault.preset == "namur_ne43"
+    res = run_replay(cfg, ROOT / "replay_data" / "orchard_pump.csv", keep_records=True)
     faults = [r for r in res.records if r["kind"] == "fault" and r["channel"] == "tank_high"]
     truth = TRUTH["fault"]
     assert [f["state"] for f in faults] == ["start", "end"]

@@ -119,8 +119,11 @@ def test_tank_edges_follow_the_high_mark(demo_records):
     assert len(e) == len(marks)
     for edge, mark in zip(e, marks):
         assert edge["edge"] == mark["direction"]
-        # the band is ±3 cm around the mark and the level moves slowly: within a second
-        assert abs(edge["t"] - mark["t"]) < 1.5
+        # Hysteresis fires past the mark: a rise at mark + h, a fall at mark − h (h = 4 cm), so
+        # the edge follows the mark crossing by about h / slope; the demo's slopes at the marks
+        # are 0.15–0.34 mA/s = 0.0375–0.085 m/s (generator truth), i.e. 0.5–1.1 s, and the
+        # noise moves the last crossing by a few tenths of a second more.
+        assert 0.0 < edge["t"] - mark["t"] < 2.0
 
 
 def test_state_before_edges_and_seq_contiguous(demo_records):
