@@ -204,7 +204,10 @@ def _setup_logging(verbose: int, command: str | None = None) -> None:
     # the daemon logs its life cycle at INFO (journald collects stderr); the tools are quiet
     base = logging.INFO if command in ("run", "record") else logging.WARNING
     level = base - 10 * min(verbose, 2)
-    logging.basicConfig(level=level, format="streamcond: %(levelname)s: %(message)s", stream=sys.stderr)
+    fmt = "streamcond: %(levelname)s: %(message)s"
+    if verbose >= 2:  # debugging: times in ms since start (journald stamps the normal lines)
+        fmt = "streamcond: %(relativeCreated)9.1f %(levelname)s %(name)s: %(message)s"
+    logging.basicConfig(level=level, format=fmt, stream=sys.stderr)
 
 
 def _fail(messages: Sequence[str]) -> int:

@@ -260,6 +260,8 @@ class Daemon:
             self.badlog.bad(len(lines), [" ".join(e.messages)], time.monotonic())
             self.parser = make_parser(self.cfg)
             return []
+        if self.counters.blocks < 5:
+            log.debug("block: %d lines, %d rows, %d bad", len(lines), parsed.rows.shape[0], parsed.bad)
         self.counters.bad_lines += parsed.bad
         self.badlog.bad(parsed.bad, parsed.examples, time.monotonic())
         if self.parser.columns is None or parsed.rows.shape[0] == 0:
