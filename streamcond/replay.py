@@ -56,6 +56,27 @@ def check_columns(cfg: Config, columns: list[str]) -> None:
         raise InputError(problems)
 
 
+def open_recording(
+    cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES
+) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool]:
+    """The parser and the block iterator for a recording or a capture, and whether the rows
+    carry host receive times as their sample time (a capture read with a config that has no
+    time column and no fixed rate)."""
+    parser = make_parser(cfg)
+    src = cfg.source
+    capture = is_capture(recording)
+    timeless = src.time_column is None and src.sample_rate_hz is None
+    if timeless and not capture:
+        raise InputError(
+            f"The recording {str(recording)!r} carries no sample time: set source.time_column "
+            "or source.sample_rate_hz, or use a capture made by `streamcond record`"
+        )
+    host_time = capture and timeless
+    if capture:
+        return parser, read_capture_blocks(recording, parser, host_time, block_bytes), host_time
+    return parser, read_blocks(recording, parser, block_bytes), host_time
+
+
 @dataclass
 class ReplayResult:
     rows: int = 0
@@ -93,20 +114,7 @@ def run_replay(
     """
     from .core.pipeline import Pipeline
 
-    parser = make_parser(cfg)
-    src = cfg.source
-    capture = is_capture(recording)
-    timeless = src.time_column is None and src.sample_rate_hz is None
-    if timeless and not capture:
-        raise InputError(
-            f"The recording {str(recording)!r} carries no sample time: set source.time_column "
-            "or source.sample_rate_hz, or replay a capture made by `streamcond record`"
-        )
-    host_time = capture and timeless
-    if capture:
-        blocks = read_capture_blocks(recording, parser, host_time, block_bytes)
-    else:
-        blocks = read_blocks(recording, parser, block_bytes)
+    parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)

@@ -196,24 +196,10 @@ def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> Channe
     from .core.channel import build_filter
     from .core.noise import MIN_SAMPLES
     from .core.timebase import Timebase
-    from .io.capture import is_capture, read_capture_blocks
-    from .io.recording import read_blocks
-    from .replay import check_columns, make_parser
+    from .replay import check_columns, open_recording
 
-    parser = make_parser(cfg)
+    parser, blocks, host_time = open_recording(cfg, recording)
     src = cfg.source
-    capture = is_capture(recording)
-    timeless = src.time_column is None and src.sample_rate_hz is None
-    if timeless and not capture:
-        raise InputError(
-            f"The recording {str(recording)!r} carries no sample time: set source.time_column "
-            "or source.sample_rate_hz, or tune on a capture made by `streamcond record`"
-        )
-    host_time = capture and timeless
-    if capture:
-        blocks = read_capture_blocks(recording, parser, host_time)
-    else:
-        blocks = read_blocks(recording, parser)
     tcols: list[np.ndarray] = []
     vcols: list[np.ndarray] = []
     bad = 0

@@ -200,7 +200,7 @@ def write_config(path: Path, port: Path, mqtt_port: int | None, spool: Path, **o
         '[station]\nname = "rig"\n'
         f'[source]\nkind = "serial"\nport = "{port}"\nformat = "csv"\n'
         'columns = ["t_ms", "a"]\ntime_column = "t_ms"\ntime_scale = 0.001\nmax_line_bytes = 256\n'
-        f'[[channel]]\nname = "a"\nband = {band}\n'
+        f'[[channel]]\nname = "a"\nband = {band}\nmeasure = {{ pulses_per_unit = 10.0, quantity_unit = "L" }}\n'
         '[stats]\ninterval_s = 1.0\n'
         f'[output]\nevents = "{over.get("events", "")}"\nstate_path = "{spool}"\n' + mqtt
     )

@@ -69,6 +69,12 @@ def test_edges_survive_a_network_outage(rig):
     # the retained state follows the last edge
     state = [json.loads(m.payload) for m in col.snapshot() if m.topic == "test/station/a/state"]
     assert state[-1]["level"] == edges_of(col.snapshot())[-1]["level"]
+    # the measures arrive too (retained): 5 Hz pulses (a toggle every 100 ms) at K = 10 /L
+    col.wait_for(lambda: bool(col.on("test/station/a/measure")), 10, "a measure record")
+    m = [json.loads(x.payload) for x in col.on("test/station/a/measure")]
+    full = [r for r in m if r.get("periods", 0) >= 4]
+    assert full and all(abs(r["frequency_hz"] - 5.0) < 0.05 for r in full)
+    assert all(r["rate_unit"] == "L/min" and r["total_units"] == r["total"] / 10.0 for r in m)
     daemon.signal(signal.SIGTERM)
     assert daemon.wait(20) == 0
     col.wait_for(lambda: col.on("test/station/status")[-1].payload == b"offline", 10, "offline")
