@@ -111,17 +111,29 @@ band = {{ low = -0.1, high = 0.1 }}
 
 
 def _run_process(argv: list[str]) -> tuple[float, float]:
-    """Wall time (s) and peak RSS (MiB) of one child process."""
+    """Wall time (s) and peak RSS (MiB) of one child process.
+
+    The peak is the child's own high-water mark (``VmHWM`` in /proc), polled while it runs:
+    ``ru_maxrss`` would also count the parent's pages the child carried between fork and exec.
+    """
     t0 = time.perf_counter()
     proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    _, status, ru = os.wait4(proc.pid, 0)
+    status = Path(f"/proc/{proc.pid}/status")
+    hwm_kib = 0
+    while proc.poll() is None:
+        try:
+            for line in status.read_text().splitlines():
+                if line.startswith("VmHWM:"):
+                    hwm_kib = max(hwm_kib, int(line.split()[1]))
+                    break
+        except (OSError, ValueError):
+            pass
+        time.sleep(0.01)
     wall = time.perf_counter() - t0
-    proc.returncode = os.waitstatus_to_exitcode(status)
     err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
     if proc.returncode != 0:
         raise RuntimeError(f"{' '.join(argv)} failed: {err.strip()}")
-    # ru_maxrss is in KiB on Linux
-    return wall, ru.ru_maxrss / 1024.0
+    return wall, hwm_kib / 1024.0
 
 
 def replay_figures(rows: int, repeat: int, workdir: Path) -> dict[str, Any]:

@@ -292,9 +292,10 @@ class Stats(_Model):
     #: 60 s is the common alarm-management criterion (ISA-18.2 practice, from memory).
     chatter_count: int = Field(3, ge=2)
     chatter_window_s: float = Field(60.0, gt=0)
-    #: Sliding window of the noise estimate for channels with a fixed band (an adaptive band
-    #: uses its own window_s).
-    noise_window_s: float = Field(5.0, gt=0)
+    #: Window of the noise estimate in the stats of a channel with a fixed band (an adaptive
+    #: band uses its own window_s): the last this many seconds before each window's end, at
+    #: least 128 samples. One estimate per stats window (about a millisecond for 1,000 samples).
+    noise_window_s: float = Field(1.0, gt=0)
 
 
 class Mqtt(_Model):

@@ -32,7 +32,10 @@ def _clean(v: Any) -> Any:
 
 def to_json(record: dict[str, Any]) -> str:
     """One record as a compact JSON line (no trailing newline)."""
-    return json.dumps(_clean(record), separators=(",", ":"), allow_nan=False)
+    try:
+        return json.dumps(record, separators=(",", ":"), allow_nan=False)
+    except ValueError:  # a NaN or infinity somewhere: those are null
+        return json.dumps(_clean(record), separators=(",", ":"), allow_nan=False)
 
 
 def edge(channel: str, t: float, level: int, value: float, seq: int) -> dict[str, Any]:

@@ -694,7 +694,8 @@ def _adaptive_window(data: ChannelData) -> float:
     if isinstance(ch.band, AdaptiveBand):
         w = float(ch.band.window_s)
     else:
-        w = float(data.cfg.stats.noise_window_s)
+        # the adaptive band's own default window (longer than the stats' quick estimate)
+        w = float(AdaptiveBand.model_fields["window_s"].default)
     return max(w, math.ceil(MIN_SAMPLES / data.fs * 100.0) / 100.0)
 
 

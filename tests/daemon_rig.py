@@ -208,9 +208,12 @@ def write_config(path: Path, port: Path, mqtt_port: int | None, spool: Path, **o
 
 
 class DaemonProcess:
-    def __init__(self, config: Path, log: Path) -> None:
+    def __init__(self, config: Path, log: Path, prefix: list[str] | None = None) -> None:
         self.config = config
         self.log = log
+        # STREAMCOND_TEST_DEBUG=1: the daemon logs at debug level, with times
+        self.extra_args = ["-vv"] if os.environ.get("STREAMCOND_TEST_DEBUG") else []
+        self.prefix = prefix or []  # e.g. ["-m", "cProfile", "-o", "out.prof"] (benchmarks)
         self.proc: subprocess.Popen[bytes] | None = None
 
     def start(self) -> "DaemonProcess":
@@ -219,7 +222,7 @@ class DaemonProcess:
         env = dict(os.environ, PYTHONUNBUFFERED="1")
         env.pop("NOTIFY_SOCKET", None)
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "streamcond", "-vv", "run", "-c", str(self.config)],
+            [sys.executable, *self.prefix, "-m", "streamcond", *self.extra_args, "run", "-c", str(self.config)],
             stdout=self._fh, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, cwd=ROOT, env=env,
         )
         return self

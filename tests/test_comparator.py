@@ -121,6 +121,7 @@ def _band_slice(b, a: int, z: int):
 @settings(deadline=None, max_examples=150)
 @given(case=signal_and_band(), sub=st.sampled_from([None, 8, 16, 24, 64]))
 def test_kernel_equals_per_sample_rule(case, sub) -> None:
+    # sub=None: the kernel as shipped (small blocks take the byte scan); otherwise the word scan
     # Source: the Schmitt-trigger rule, stated per sample by hysteresis_reference.
     x, low, high, level = case
     if sub is None or not hasattr(comparator, "_SUB"):
@@ -128,7 +129,10 @@ def test_kernel_equals_per_sample_rule(case, sub) -> None:
     else:
         # small internal sub-blocks (the kernel documents multiples of 8) put the kernel's
         # own block seams inside the test signals
-        with mock.patch.object(comparator, "_SUB", sub):
+        # _SMALL = 0 sends every block through the eight-samples-a-word scan, which the kernel
+        # otherwise keeps for blocks of 4096 samples or more
+        with mock.patch.object(comparator, "_SUB", sub), mock.patch.object(comparator, "_SMALL", 0), \
+                mock.patch.object(comparator, "_TINY", 0):
             tr, new_level = hysteresis(x, low, high, level)
     ref_idx, ref_lev, ref_level = hysteresis_reference(x, low, high, level)
     assert tr.index.dtype == np.int64

@@ -35,6 +35,11 @@ UNKNOWN = -1
 #: Samples per internal sub-block. 256 Ki float64 (2 MiB) plus three 256 KiB boolean scratch arrays:
 #: small enough to stay in the outer caches, large enough that the per-sub-block Python overhead
 #: vanishes. Measured on this machine: 32 Ki → 0.8×, 256 Ki → 1.1×, 16 Mi → 0.6× the bare numpy pass.
+#: Below this many samples the one-byte-per-sample scan is cheaper (less set-up); live blocks
+#: of a few milliseconds are that small.
+_SMALL = 4096
+#: At most this many samples: the per-sample loop (numpy's per-call overhead dominates).
+_TINY = 64
 _SUB = 1 << 18  # must stay a multiple of 8 (the word scan addresses sub-blocks in words)
 
 
@@ -75,9 +80,18 @@ def hysteresis(
     x = np.asarray(x, dtype=np.float64)
     if x.size == 0:
         return Transitions(_EMPTY_I, _EMPTY_L, False), level
-    if sys.byteorder == "little":
+    if x.size <= _TINY:
+        # a live block of a few samples: a plain loop beats a dozen numpy calls' overhead
+        # (the same rule as the kernel; the tests hold both to the per-sample reference)
+        start = level
+        idx, lev, level = hysteresis_reference(x, low, high, level)
+        return (
+            Transitions(np.asarray(idx, np.int64), np.asarray(lev, np.int8), start == UNKNOWN and bool(idx)),
+            level,
+        )
+    if sys.byteorder == "little" and x.size >= _SMALL:
         pos, typ = _run_starts_words(x, low, high)
-    else:  # pragma: no cover - the word trick below assumes little-endian byte order
+    else:  # small blocks, or a big-endian machine (the word trick assumes little-endian)
         pos, typ = _run_starts_bytes(x, low, high)
     if pos.size == 0:
         return Transitions(_EMPTY_I, _EMPTY_L, False), level

@@ -399,6 +399,12 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
     return NoiseEstimate(sigma=math.sqrt(sigma2), nu0_hz=nu0)
 
 
+_NO_IDX = np.empty(0, dtype=np.int64)
+_NO_VAL = np.empty(0, dtype=np.float64)
+_NO_IDX.flags.writeable = False
+_NO_VAL.flags.writeable = False
+
+
 class NoiseTracker:
     """Streaming noise estimate over a sliding window, chunk-invariant.
 
@@ -470,6 +476,13 @@ class NoiseTracker:
         n1 = n0 + a.size
         # Sample numbers n in (n0, n1] with n >= wn and (n - wn) % every == 0.
         first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
+        if first > n1 and a.size <= wn and self._fill + a.size <= self._store.size:
+            # no estimate due in this (short) block: just keep the samples (the common case
+            # for a live block of a few milliseconds)
+            self._store[self._fill : self._fill + a.size] = a
+            self._fill += a.size
+            self._count = n1
+            return _NO_IDX, _NO_VAL, _NO_VAL
         due = np.arange(first, n1 + 1, every, dtype=np.int64)
 
         if a.size <= wn:

@@ -30,7 +30,11 @@ from broker import Collector, broker_kinds, private_broker  # noqa: E402
 from daemon_rig import DaemonProcess, Pty  # noqa: E402
 
 CHANNELS = 8
-TOGGLE_MS = 50  # each channel toggles every 50 ms of device time: 8 × 20 = 160 edges/s
+PROFILE = os.environ.get("STREAMCOND_BENCH_PROFILE")  # a path: profile the daemon (cProfile)
+#: Each channel toggles every TOGGLE_MS of device time (``--toggle-ms``): 500 ms gives
+#: 8 × 2 = 16 edges/s (level-type channels, the usual case), 50 ms gives 160 edges/s
+#: (eight 10 Hz pulse channels: a busy station).
+TOGGLE_MS = 500
 
 
 def config(path: Path, port: Path, mqtt_port: int, spool: Path, rate_hz: float) -> None:
@@ -81,7 +85,7 @@ class Writer(threading.Thread):
                 levels = []
                 for c in range(CHANNELS):
                     # channels are staggered so their edges don't all coincide
-                    lv = ((t_us // 1000 + c * 6) // TOGGLE_MS) % 2
+                    lv = ((t_us // 1000 + c * (TOGGLE_MS // CHANNELS)) // TOGGLE_MS) % 2
                     if last[c] is not None and lv != last[c]:
                         self.toggle_times[c].append(stamp)
                     last[c] = lv
@@ -124,15 +128,24 @@ def run_step(tmp: Path, broker, rate_hz: float, seconds: float) -> dict:
 
     col._c.on_message = on_message
     col.start()
-    daemon = DaemonProcess(cfgp, tmp / f"daemon{int(rate_hz)}.log").start()
+    prof = ["-m", "cProfile", "-o", PROFILE] if PROFILE else None
+    daemon = DaemonProcess(cfgp, tmp / f"daemon{int(rate_hz)}.log", prefix=prof).start()
     daemon.wait_log("opened", 20)
     time.sleep(0.5)
     pid = daemon.proc.pid
+    spy = None
+    if os.environ.get("STREAMCOND_BENCH_PYSPY"):  # a path: sample the daemon with py-spy
+        import subprocess
+        spy = subprocess.Popen(["py-spy", "record", "-p", str(pid), "-o", os.environ["STREAMCOND_BENCH_PYSPY"],
+                                "-f", "raw", "-r", "200", "-d", str(int(seconds))],
+                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     cpu0, wall0 = proc_cpu_s(pid), time.monotonic()
     w = Writer(pty, rate_hz, seconds)
     w.start()
     w.join()
     cpu1, wall1 = proc_cpu_s(pid), time.monotonic()
+    if spy is not None:
+        spy.wait(timeout=30)
     time.sleep(1.0)  # let the tail arrive
     hwm = proc_hwm_mib(pid)
     daemon.signal(15)
@@ -180,7 +193,10 @@ def main() -> int:
     ap.add_argument("--step-seconds", type=float, default=6.0, help="length of each rate step")
     ap.add_argument("--json", action="store_true")
     ap.add_argument("--max-rate", type=float, default=32000.0)
+    ap.add_argument("--toggle-ms", type=int, default=500, help="half-period of each channel's square wave")
     args = ap.parse_args()
+    global TOGGLE_MS
+    TOGGLE_MS = args.toggle_ms
     out: dict = {}
     with tempfile.TemporaryDirectory(prefix="streamcond-bench-") as d:
         tmp = Path(d)
@@ -204,7 +220,8 @@ def main() -> int:
         print(json.dumps(out, indent=2))
     else:
         a = out["at_1khz"]
-        print(f"broker: {out['broker']}; {CHANNELS} channels × 1,000 samples/s for {args.seconds:g} s:")
+        print(f"broker: {out['broker']}; {CHANNELS} channels × 1,000 samples/s for {args.seconds:g} s, "
+              f"each toggling every {TOGGLE_MS} ms ({CHANNELS * 1000 // TOGGLE_MS} edges/s):")
         print(f"  latency line→MQTT  p50 {a['latency_p50_ms']:.1f} ms   p99 {a['latency_p99_ms']:.1f} ms"
               f"   max {a['latency_max_ms']:.1f} ms   ({a['edges_expected']} edges, {a['edges_missing']} missing)")
         print(f"  daemon CPU {a['cpu_share_of_one_core'] * 100:.1f} % of one core, peak RSS {a['peak_rss_mib']:.0f} MiB")
