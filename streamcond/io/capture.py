@@ -90,7 +90,7 @@ def split_capture(body: bytes) -> tuple[list[bytes], np.ndarray, int]:
 
 
 def read_capture_blocks(
-    path: str | Path, parser: LineParser, host_time: bool, block_bytes: int = 1 << 20
+    path: str | Path, parser: LineParser, host_time: bool, block_bytes: int = 1 << 22
 ) -> Iterator[tuple[Parsed, int, int]]:
     """Like :func:`streamcond.io.recording.read_blocks`, for a capture file.
 

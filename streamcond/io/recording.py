@@ -15,7 +15,7 @@ from pathlib import Path
 from ..errors import InputError
 from .lineparse import LineParser, Parsed
 
-DEFAULT_BLOCK_BYTES = 1 << 20
+DEFAULT_BLOCK_BYTES = 1 << 22
 
 
 def read_blocks(
