@@ -361,7 +361,7 @@ class Config(_Model):
 
 def load_config(path: str | Path) -> Config:
     """Read and validate a TOML config; raises :class:`streamcond.errors.ConfigError`."""
-    from .errors import ConfigError, from_validation_error
+    from .errors import ConfigError
 
     p = Path(path)
     try:

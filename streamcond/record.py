@@ -13,7 +13,6 @@ import logging
 import signal
 import sys
 import time
-from pathlib import Path
 
 from .config import load_config
 from .errors import ConfigError

@@ -1032,7 +1032,6 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
-    u = res.unit or "value"
     ulab = f" ({res.unit})" if res.unit else ""
     s = res.suggestion
     c = res.center

@@ -17,8 +17,6 @@ sample count, so the result does not depend on how the rows were chunked).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-
 import numpy as np
 
 from .. import records
@@ -28,13 +26,6 @@ ESTIMATE_N = 16
 
 #: Rows scanned per step while looking for the next irregular time.
 _WINDOW = 4096
-
-
-@dataclass
-class TimebaseOutput:
-    t: np.ndarray  # seconds, strictly increasing
-    keep: np.ndarray  # indices of the input rows that were kept
-    gaps: list[tuple[int, dict]] = field(default_factory=list)  # (output sample index, record)
 
 
 class Timebase:
