@@ -293,9 +293,12 @@ class Stats(_Model):
     chatter_count: int = Field(3, ge=2)
     chatter_window_s: float = Field(60.0, gt=0)
     #: Window of the noise estimate in the stats of a channel with a fixed band (an adaptive
-    #: band uses its own window_s): the last this many seconds before each window's end, at
-    #: least 128 samples. One estimate per stats window (about a millisecond for 1,000 samples).
-    noise_window_s: float = Field(1.0, gt=0)
+    #: band uses its own window_s): at least 128 samples, and long compared with the noise's
+    #: correlation time — a 1 s window reads low-pass noise far too low.
+    noise_window_s: float = Field(5.0, gt=0)
+    #: ... refreshed every this many seconds of sample time (at least once per stats window):
+    #: noise changes slowly, and one estimate costs a few milliseconds of a replay.
+    noise_refresh_s: float = Field(60.0, gt=0)
 
 
 class Mqtt(_Model):

@@ -65,9 +65,9 @@ class ChannelConditioner:
                 )
             self.noise = NoiseTracker(sample_rate_hz, cfg.band.window_s)
         else:
-            # A fixed band needs σ̂ only for the stats records: one estimate per stats window,
-            # over at least the estimator's minimum number of samples.
-            every = max(1, round(stats.interval_s * sample_rate_hz))
+            # A fixed band needs σ̂ only for the stats records: an estimate every
+            # max(interval_s, noise_refresh_s), over at least the estimator's minimum samples.
+            every = max(1, round(max(stats.interval_s, stats.noise_refresh_s) * sample_rate_hz))
             window_s = max(stats.noise_window_s, MIN_SAMPLES / sample_rate_hz)
             self.noise = NoiseTracker(sample_rate_hz, window_s, update_every=every)
         self.stats = ChannelStats(
