@@ -483,34 +483,38 @@ class SerialSource:
                 try:
                     waiting = ser.in_waiting
                     data = ser.read(waiting or 1)
+                    t = self.clock()
+                    if data:
+                        pending.append(data)
+                    # Hand over at most every coalesce_s: each hand-over wakes the event loop,
+                    # and at a kilohertz of lines those wake-ups would cost more than the
+                    # conditioning. Too soon: wait out the rest; then a quiet line is handed
+                    # over at once, a busy one by the next read (always the plain
+                    # in_waiting-then-read pattern above: nothing else reads the port).
+                    if pending and t - last_post < self.coalesce_s:
+                        self._stop.wait(self.coalesce_s - (t - last_post))
+                        if ser.in_waiting:
+                            continue
+                        t = self.clock()
                 except OSError as e:
                     # SerialException is an OSError; a hung-up pty gives EIO from in_waiting
                     # or "readiness to read but returned no data" from read.
                     if self._stop.is_set():
                         break
                     t = self.clock()
+                    if pending:  # what had arrived before the loss is still data
+                        self._post(Data(b"".join(pending), t))
+                        pending.clear()
                     log.warning("lost %s (%s); will keep retrying", self.port, e)
                     self._close()
                     self._post(Lost(t, str(e) or type(e).__name__))
                     if not self._connect(first=False):
                         break
                     continue
-                t = self.clock()
-                if data and not self._stop.is_set():
-                    pending.append(data)
-                    # Hand over at most every coalesce_s: each hand-over wakes the event loop,
-                    # and at a kilohertz of lines those wake-ups would cost more than the
-                    # conditioning. A quiet line is handed over at once.
-                    if t - last_post >= self.coalesce_s or not ser.in_waiting:
-                        if t - last_post < self.coalesce_s:
-                            self._stop.wait(self.coalesce_s - (t - last_post))
-                            more = ser.in_waiting
-                            if more:
-                                pending.append(ser.read(more))
-                            t = self.clock()
-                        self._post(Data(b"".join(pending), t))
-                        pending.clear()
-                        last_post = t
+                if pending and not self._stop.is_set():
+                    self._post(Data(b"".join(pending), t))
+                    pending.clear()
+                    last_post = t
         except BaseException as e:  # a bug or a bad setting: surface it, do not die silently
             log.exception("serial reader for %s failed", self.port)
             self._post(_Failure(e))
