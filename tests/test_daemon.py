@@ -66,9 +66,14 @@ def test_edges_survive_a_network_outage(rig):
     wave.run_for(1.5)
     edges = wait_edges(col, wave.toggles)
     assert_contiguous(edges, wave.toggles)
-    # the retained state follows the last edge
-    state = [json.loads(m.payload) for m in col.snapshot() if m.topic == "test/station/a/state"]
-    assert state[-1]["level"] == edges_of(col.snapshot())[-1]["level"]
+    # the retained state follows the last edge (it is published right after the edge)
+    last = max(edges, key=lambda e: e["seq"])
+    col.wait_for(
+        lambda: any(json.loads(m.payload).get("seq") == last["seq"] for m in col.on("test/station/a/state")),
+        10, "the state after the last edge",
+    )
+    state = [json.loads(m.payload) for m in col.on("test/station/a/state")]
+    assert state[-1]["level"] == last["level"] and state[-1]["seq"] == last["seq"]
     # the measures arrive too (retained): 5 Hz pulses (a toggle every 100 ms) at K = 10 /L
     col.wait_for(lambda: bool(col.on("test/station/a/measure")), 10, "a measure record")
     m = [json.loads(x.payload) for x in col.on("test/station/a/measure")]
