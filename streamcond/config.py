@@ -63,6 +63,11 @@ class Source(_Model):
             raise ValueError("must not name a column twice")
         return v
 
+    @property
+    def host_time(self) -> bool:
+        """No time column and no fixed rate: sample time is the host receive time."""
+        return self.time_column is None and self.sample_rate_hz is None
+
     @model_validator(mode="after")
     def _needs_time(self) -> "Source":
         # Without time_column and sample_rate_hz, sample time is the host receive time: the
@@ -250,6 +255,11 @@ class Fault(_Model):
         if lo > -math.inf and hi < math.inf and not lo < hi:
             raise ValueError("{at}.at_or_below must be below {at}.at_or_above")
         return self
+
+    def mask(self, raw: Any) -> Any:
+        """True where a raw sample (an array) is a fault; the one statement of the rule."""
+        lo, hi = self.limits
+        return (raw <= lo) | (raw >= hi)
 
     @property
     def limits(self) -> tuple[float, float]:

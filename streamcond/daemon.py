@@ -24,7 +24,7 @@ import asyncio
 import logging
 import signal
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -96,7 +96,6 @@ class Counters:
     records: int = 0
     reloads: int = 0
     rejected_reloads: int = 0
-    started: float = field(default_factory=time.monotonic)
 
 
 class Daemon:
@@ -135,10 +134,6 @@ class Daemon:
         self.parser: LineParser = make_parser(self.cfg)
         self.pipeline: Pipeline | None = None
 
-    @property
-    def host_time(self) -> bool:
-        src = self.cfg.source
-        return src.time_column is None and src.sample_rate_hz is None
 
     def _open_outputs(self) -> None:
         from .io.spool import Spool
@@ -267,8 +262,6 @@ class Daemon:
             self.badlog.bad(len(lines), [" ".join(e.messages)], time.monotonic())
             self.parser = make_parser(self.cfg)
             return []
-        if self.counters.blocks < 5:
-            log.debug("block: %d lines, %d rows, %d bad", len(lines), parsed.rows.shape[0], parsed.bad)
         self.counters.bad_lines += parsed.bad
         self.badlog.bad(parsed.bad, parsed.examples, time.monotonic())
         if self.parser.columns is None or parsed.rows.shape[0] == 0:
@@ -282,9 +275,8 @@ class Daemon:
 
     def _new_pipeline(self, cfg: Config) -> Pipeline:
         assert self.parser.columns is not None
-        host_time = cfg.source.time_column is None and cfg.source.sample_rate_hz is None
         check_columns(cfg, self.parser.columns)
-        return Pipeline(cfg, self.parser.columns + [HOST_T], host_time=host_time)
+        return Pipeline(cfg, self.parser.columns + [HOST_T], host_time=cfg.source.host_time)
 
     async def _emit(self, recs: list[dict[str, Any]]) -> None:
         self.counters.records += len(recs)
@@ -391,7 +383,9 @@ class Daemon:
             if left:
                 log.warning("%d record(s) left in the spool; they are sent after the next start", left)
         c = self.counters
-        log.info("stopped: %d rows, %d bad lines, %d records", c.rows, c.bad_lines, c.records)
+        log.info("stopped: %d rows, %d bad lines, %d over-long lines, %d records, %d reloads "
+                 "(%d rejected)", c.rows, c.bad_lines, c.dropped_long, c.records, c.reloads,
+                 c.rejected_reloads)
 
     async def _watchdog(self) -> None:
         assert self.notifier.watchdog_s

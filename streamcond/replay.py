@@ -65,13 +65,12 @@ def open_recording(
     parser = make_parser(cfg)
     src = cfg.source
     capture = is_capture(recording)
-    timeless = src.time_column is None and src.sample_rate_hz is None
-    if timeless and not capture:
+    if src.host_time and not capture:
         raise InputError(
             f"The recording {str(recording)!r} carries no sample time: set source.time_column "
             "or source.sample_rate_hz, or use a capture made by `streamcond record`"
         )
-    host_time = capture and timeless
+    host_time = capture and src.host_time
     if capture:
         return parser, read_capture_blocks(recording, parser, host_time, block_bytes), host_time
     return parser, read_blocks(recording, parser, block_bytes), host_time
@@ -139,7 +138,6 @@ def run_replay(
         if parsed.examples:
             for msg in parsed.examples:
                 log.warning("bad input skipped: %s", msg)
-        res.bad_lines += parsed.bad
         if pipe is None:
             if parser.columns is None:
                 continue
@@ -164,6 +162,7 @@ def run_replay(
     if parser.bad > len(parser.examples):
         log.warning("%d bad lines skipped in all (the first %d are listed above)",
                     parser.bad, len(parser.examples))
+    res.bad_lines = parser.bad  # the parser counts every bad line it skipped
     res.examples = list(parser.examples)
     res.summary = {
         "kind": records.SUMMARY,

@@ -236,16 +236,12 @@ def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> Channe
     )
     if not tb.ready:
         assert raw_t is not None
-        if not tb.estimate(raw_t):
-            # as Pipeline.finish: a recording shorter than the estimate uses what there is
-            d = np.diff(raw_t * tb.time_scale)
-            d = d[d > 0]
-            if d.size == 0:
-                raise InputError(
-                    f"The recording {str(recording)!r} has too few samples with increasing "
-                    f"times to tell the sample rate"
-                )
-            tb.period = float(np.median(d))
+        # the whole recording is here: a short one uses the steps it has (as Pipeline.finish)
+        if not tb.estimate(raw_t, final=True):
+            raise InputError(
+                f"The recording {str(recording)!r} has too few samples with increasing "
+                f"times to tell the sample rate"
+            )
     t, keep, gaps = tb.process(raw_t, raw.size)
     if keep.size != raw.size:
         raw = raw[keep]
@@ -253,8 +249,7 @@ def read_channel(cfg: Config, recording: str | Path, channel: Channel) -> Channe
     fs = 1.0 / tb.period
     good: np.ndarray | None = None
     if channel.fault is not None:
-        lo, hi = channel.fault.limits
-        bad_s = (raw <= lo) | (raw >= hi)
+        bad_s = channel.fault.mask(raw)
         if bad_s.any():
             good = np.flatnonzero(~bad_s)
     n_good = raw.size if good is None else good.size

@@ -108,9 +108,8 @@ class ChannelConditioner:
         # events inside the block: (sample index, order, payload); at one index: the stats
         # window closes first, then a fault starts or ends, then a noise estimate applies
         events: list[tuple[int, int, Any]] = []
-        if self.fault_limits is not None:
-            lo, hi = self.fault_limits
-            bad = (raw <= lo) | (raw >= hi)
+        if self.cfg.fault is not None:
+            bad = self.cfg.fault.mask(raw)
             flips = np.flatnonzero(bad[1:] != bad[:-1]) + 1
             if bool(bad[0]) != self.in_fault:
                 flips = np.concatenate((np.zeros(1, np.int64), flips))

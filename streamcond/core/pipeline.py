@@ -117,11 +117,7 @@ class Pipeline:
         the period estimated from what there is (a recording shorter than the estimate)."""
         out: list[dict[str, Any]] = []
         if not self.timebase.ready and self._held.shape[0]:
-            ts = self._held[:, self.time_col] * self.timebase.time_scale
-            d = np.diff(ts)
-            d = d[d > 0]
-            if d.size:
-                self.timebase.period = float(np.median(d))
+            if self.timebase.estimate(self._held[:, self.time_col], final=True):
                 held, self._held = self._held, np.empty((0, len(self.columns)))
                 out = self.process(held)
         return out

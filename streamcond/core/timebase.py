@@ -53,14 +53,17 @@ class Timebase:
     def ready(self) -> bool:
         return self.period is not None
 
-    def estimate(self, raw_t: np.ndarray) -> bool:
-        """Try to fix the nominal period from the rows seen so far (all of them, every call)."""
+    def estimate(self, raw_t: np.ndarray, final: bool = False) -> bool:
+        """Try to fix the nominal period from the rows seen so far (all of them, every call).
+
+        ``final``: the stream has ended; a recording shorter than ``ESTIMATE_N`` steps takes the
+        median of the steps it has."""
         if self.period is not None:
             return True
         ts = np.asarray(raw_t, dtype=np.float64) * self.time_scale
         d = np.diff(ts)
         d = d[d > 0]
-        if d.size < ESTIMATE_N:
+        if d.size < ESTIMATE_N and not (final and d.size):
             return False
         self.period = float(np.median(d[:ESTIMATE_N]))
         return True

@@ -79,13 +79,13 @@ import logging
 import math
 import ssl
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Protocol
+from typing import Any
 
 import aiomqtt
 
 from ..config import Mqtt
 from ..records import to_json
-from .spool import SpoolError
+from .spool import Spool, SpoolError
 
 log = logging.getLogger(__name__)
 
@@ -108,25 +108,6 @@ _CHANNEL_TOPICS = {
 _SOURCE_TOPICS = {"gap": ("gap", False), "fault": ("fault", False)}
 _NOT_PUBLISHED = frozenset({"summary"})
 _TOPIC_FORBIDDEN = ("+", "#", "\x00")
-
-
-class SpoolItemLike(Protocol):
-    id: int
-    topic: str
-    payload: bytes
-    qos: int
-    retain: bool
-    kind: str
-
-
-class SpoolLike(Protocol):
-    """What the publisher needs of :class:`streamcond.io.spool.Spool`."""
-
-    def peek(self, limit: int, after_id: int = 0) -> list[Any]: ...
-
-    def ack(self, ids: Iterable[int]) -> None: ...
-
-    def __len__(self) -> int: ...
 
 
 def _check_prefix(prefix: str) -> str:
@@ -275,7 +256,7 @@ class Publisher:
         self,
         cfg: Mqtt,
         prefix: str,
-        spool: SpoolLike,
+        spool: Spool,
         *,
         window: int = 64,
         connect_timeout_s: float = 5.0,
