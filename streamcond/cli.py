@@ -51,24 +51,26 @@ def _positive_int(s: str) -> int:
     return v
 
 
-def _positive_float(s: str) -> float:
-    try:
-        v = float(s)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{s!r} is not a number") from None
-    if not v > 0 or v == float("inf"):
-        raise argparse.ArgumentTypeError("must be a positive number")
-    return v
+def _float_arg(allow_zero: bool):
+    """An argparse type: a finite number above 0 (or at least 0)."""
+
+    def parse(s: str) -> float:
+        try:
+            v = float(s)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{s!r} is not a number") from None
+        ok = (v >= 0 if allow_zero else v > 0) and v != float("inf")
+        if not ok:
+            raise argparse.ArgumentTypeError(
+                "must be 0 or a positive number" if allow_zero else "must be a positive number"
+            )
+        return v
+
+    return parse
 
 
-def _nonneg_float(s: str) -> float:
-    try:
-        v = float(s)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{s!r} is not a number") from None
-    if not v >= 0 or v == float("inf"):
-        raise argparse.ArgumentTypeError("must be 0 or a positive number")
-    return v
+_positive_float = _float_arg(allow_zero=False)
+_nonneg_float = _float_arg(allow_zero=True)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -57,15 +57,44 @@ def key_path(loc: tuple[Any, ...]) -> str:
     return out
 
 
+#: Sentences for pydantic's error types; ``{where}`` is the key path, the rest comes from the
+#: error's context.
+_TEMPLATES: dict[str, str] = {
+    "missing": "{where} is required",
+    "extra_forbidden": "{where} is not a known setting",
+    "literal_error": "{where} must be one of {expected}",
+    "union_tag_not_found": "{where} needs a {discriminator} key",
+    "greater_than": "{where} must be greater than {gt}",
+    "greater_than_equal": "{where} must be at least {ge}",
+    "less_than": "{where} must be less than {lt}",
+    "less_than_equal": "{where} must be at most {le}",
+    "string_pattern_mismatch": "{where} may only contain letters, digits, '_' and '-'",
+    "too_short": "{where} must have at least {min_length} item(s)",
+    "float_parsing": "{where} must be a number",
+    "float_type": "{where} must be a number",
+    "int_parsing": "{where} must be a whole number",
+    "int_type": "{where} must be a whole number",
+    "int_from_float": "{where} must be a whole number",
+    "bool_parsing": "{where} must be true or false",
+    "bool_type": "{where} must be true or false",
+    "string_type": "{where} must be a string",
+    "list_type": "{where} must be a list",
+    "model_type": "{where} must be a table",
+    "dict_type": "{where} must be a table",
+    "model_attributes_type": "{where} must be a table",
+}
+
+
+class _Ctx(dict):
+    def __missing__(self, key: str) -> str:
+        return ""
+
+
 def _describe(err: dict[str, Any]) -> str:
     typ = err["type"]
     ctx = err.get("ctx") or {}
     path = key_path(err["loc"])
     where = path or "the config"
-    if typ == "missing":
-        return f"{where} is required"
-    if typ == "extra_forbidden":
-        return f"{where} is not a known setting"
     if typ in ("value_error", "assertion_error"):
         msg = str(ctx.get("error", err["msg"]))
         msg = msg.removeprefix("Value error, ").removeprefix("Assertion failed, ")
@@ -74,37 +103,13 @@ def _describe(err: dict[str, Any]) -> str:
         if path and not msg.startswith(path):
             return f"{path}: {msg}"
         return msg
-    if typ == "literal_error":
-        return f"{where} must be one of {ctx.get('expected', '')}"
     if typ == "union_tag_invalid":
         key = "mode" if where.endswith("band") else "kind"
         return f"{where}.{key} must be one of {ctx.get('expected_tags', '')}, not {ctx.get('tag')!r}"
-    if typ == "union_tag_not_found":
-        return f"{where} needs a {ctx.get('discriminator', 'kind')} key"
-    if typ == "greater_than":
-        return f"{where} must be greater than {ctx.get('gt')}"
-    if typ == "greater_than_equal":
-        return f"{where} must be at least {ctx.get('ge')}"
-    if typ == "less_than":
-        return f"{where} must be less than {ctx.get('lt')}"
-    if typ == "less_than_equal":
-        return f"{where} must be at most {ctx.get('le')}"
-    if typ == "string_pattern_mismatch":
-        return f"{where} may only contain letters, digits, '_' and '-'"
-    if typ == "too_short":
-        return f"{where} must have at least {ctx.get('min_length')} item(s)"
-    if typ in ("float_parsing", "float_type"):
-        return f"{where} must be a number"
-    if typ in ("int_parsing", "int_type", "int_from_float"):
-        return f"{where} must be a whole number"
-    if typ in ("bool_parsing", "bool_type"):
-        return f"{where} must be true or false"
-    if typ in ("string_type",):
-        return f"{where} must be a string"
-    if typ in ("list_type",):
-        return f"{where} must be a list"
-    if typ in ("model_type", "dict_type", "model_attributes_type"):
-        return f"{where} must be a table"
+    if typ in _TEMPLATES:
+        fields = _Ctx(ctx, where=where)
+        fields.setdefault("discriminator", "kind")
+        return _TEMPLATES[typ].format_map(fields)
     return f"{where}: {err['msg']}"
 
 
