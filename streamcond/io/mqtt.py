@@ -110,6 +110,19 @@ _NOT_PUBLISHED = frozenset({"summary"})
 _TOPIC_FORBIDDEN = ("+", "#", "\x00")
 
 
+def _raise_if_cancelled(cause: BaseException | None = None) -> None:
+    """End a task whose cancellation was swallowed on the way.
+
+    In Python 3.11 ``asyncio.wait_for`` (which the MQTT client uses for its timeouts) can
+    return a result, or raise its timeout, when the outer task is cancelled at the moment the
+    inner operation finishes; the request stays pending (``Task.cancelling()``) but nothing
+    raises it, and a publisher then idling on its events would never end.
+    """
+    me = asyncio.current_task()
+    if me is not None and me.cancelling():
+        raise asyncio.CancelledError() from cause
+
+
 def _check_prefix(prefix: str) -> str:
     p = prefix.rstrip("/")
     if not p or any(c in p for c in _TOPIC_FORBIDDEN):
@@ -325,6 +338,9 @@ class Publisher:
                     await self._session(stop)
                     return  # a session ends without error only when stopping
                 except (aiomqtt.MqttError, OSError, ValueError, SpoolError) as e:
+                    # a cancellation that met a timeout inside the client can surface as an
+                    # error: a task being cancelled must end, not reconnect
+                    _raise_if_cancelled(e)
                     # SpoolError too: the daemon goes on, and nothing is acknowledged that
                     # was not sent, so retrying later is safe.
                     self._record_error(e, lost=self.counters.connects > connected_before)
@@ -460,6 +476,7 @@ class Publisher:
                 watcher = asyncio.ensure_future(self._watch_disconnect(client))
                 try:
                     await self._publish_status(client, STATUS_ONLINE, self.publish_timeout_s)
+                    _raise_if_cancelled()
                     await self._pump(client, sess, watcher, stop, loop)
                 except asyncio.CancelledError:
                     # Cancelled from outside: still tell subscribers we are gone (a graceful
@@ -520,6 +537,7 @@ class Publisher:
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
         try:
             while True:
+                _raise_if_cancelled()
                 closing = self._closing.is_set()
                 if stop.is_set() and not closing:
                     return  # plain stop: no further drain, un-acked items stay spooled
