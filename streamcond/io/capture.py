@@ -133,4 +133,4 @@ def read_capture_blocks(
                 parser.bad += bad
             return p
 
-    yield from read_blocks(path, _Splitter(), block_bytes)  # type: ignore[arg-type]
+    yield from read_blocks(path, parser, block_bytes, feeder=_Splitter())
