@@ -327,8 +327,26 @@ class Mqtt(_Model):
     spool_max_records: int = Field(1_000_000, ge=100)
 
 
+class Rotate(_Model):
+    """Rotation of the events file (a daemon on an SD card must not fill it): start a new file
+    when this one reaches ``max_bytes`` or has been open ``max_age_s``; keep ``keep`` old ones
+    (NAME.1 newest … NAME.keep oldest)."""
+
+    max_bytes: int | None = Field(None, ge=1024)
+    max_age_s: float | None = Field(None, gt=0)
+    keep: int = Field(5, ge=1, le=1000)
+
+    @model_validator(mode="after")
+    def _some_limit(self) -> "Rotate":
+        if self.max_bytes is None and self.max_age_s is None:
+            raise ValueError("{at} needs max_bytes or max_age_s (or both)")
+        return self
+
+
 class Output(_Model):
     events: str = "-"  # "" = no events file (e.g. a daemon that only publishes)
+    #: Rotation of the events file (none by default).
+    rotate: Rotate | None = None
     #: Channel state (seq, levels) of the live daemon when there is no MQTT spool to hold it.
     state_path: str = "state/streamcond.sqlite"
     mqtt: Mqtt | None = None
