@@ -129,7 +129,8 @@ def build_parser() -> argparse.ArgumentParser:
         "Run a recording through the same parser and conditioning core as the live daemon and\n"
         "write the records (state, edges, gaps, and a closing summary) as JSON lines.",
     )
-    r.add_argument("recording", metavar="RECORDING", help="recorded stream (CSV/kv/JSON lines)")
+    r.add_argument("recording", metavar="RECORDING", nargs="?",
+                   help="recorded stream (CSV/kv/JSON lines, or a capture); default: source.path")
     r.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     r.add_argument(
         "--events",
@@ -304,6 +305,10 @@ def _replay(args: argparse.Namespace) -> int:
         flag = "--update-golden" if args.update_golden else "--compare-all"
         raise InputError(f"{flag} needs --expect GOLDEN")
     cfg = load_config(args.config)
+    if args.recording is None:
+        if not cfg.source.path:
+            raise InputError("Give a RECORDING, or set source.path in the config")
+        args.recording = cfg.source.path  # relative to the current directory, like RECORDING
     rec = Path(args.recording)
     if not rec.exists():  # before any output is opened
         raise InputError(f"The recording {args.recording!r} does not exist")
