@@ -275,3 +275,91 @@ def test_verbosity_flags_after_the_command(work):
 
     a = build_parser().parse_args(["-v", "check", "-c", "x", "-vv"])
     assert a.verbose + a.verbose_sub == 3
+
+
+# -- 13: progress driven by sample time ----------------------------------------------------------
+
+
+class _Recorder:
+    def __init__(self) -> None:
+        self.calls: list[tuple[int, int, float | None]] = []
+
+    def update(self, done: int, rows: int, t: float | None = None) -> None:
+        self.calls.append((done, rows, t))
+
+
+@pytest.mark.parametrize("speed", [None, 1000.0])
+def test_progress_moves_with_sample_time(speed):
+    from streamcond.config import load_config
+    from streamcond.replay import run_replay
+
+    rec = _Recorder()
+    # the demo (45,000 rows, 1.3 MB) is a single read block: progress used to move once, at
+    # the end; now after every piece fed to the pipeline, also when paced by --speed
+    now = [0.0]
+    run_replay(load_config(CONFIG), DEMO, chunk=1000, speed=speed, progress=rec,
+               sleep=lambda s: now.__setitem__(0, now[0] + s), clock=lambda: now[0])
+    ts = [t for _, _, t in rec.calls]
+    assert len(rec.calls) >= 45
+    assert ts == sorted(ts) and ts[0] < 5.0 and ts[-1] == pytest.approx(179.996)
+    done = [d for d, _, _ in rec.calls]
+    assert done == sorted(done) and done[-1] == DEMO.stat().st_size
+    assert done[len(done) // 2] < 0.7 * done[-1]  # inside the block, bytes follow the rows
+
+
+def test_progress_line_in_a_real_terminal(tmp_path):
+    # a real terminal (tmux, on a private socket) shows the line on a small file under --speed
+    if shutil.which("tmux") is None:  # pragma: no cover - tmux is in the test image
+        pytest.fail("tmux is needed for this test")
+    sock = f"streamcond-test-{os.getpid()}"
+    out = tmp_path / "screen.txt"
+    cmd = (f"cd {ROOT} && {sys.executable} -m streamcond replay {DEMO} -c {CONFIG} --events "
+           f"{tmp_path / 'ev.jsonl'} --speed 30; sleep 30")
+    subprocess.run(["tmux", "-L", sock, "new-session", "-d", "-x", "150", "-y", "10", cmd],
+                   check=True)
+    try:
+        seen = ""
+        deadline = time.monotonic() + 20
+        while time.monotonic() < deadline and "t = " not in seen:
+            time.sleep(0.3)
+            seen = subprocess.run(["tmux", "-L", sock, "capture-pane", "-p"],
+                                  capture_output=True, text=True).stdout
+        assert "t = " in seen and "rows/s" in seen, seen
+        t1 = float(seen.split("t = ")[-1].split()[0].replace(",", ""))
+        time.sleep(1.0)
+        seen = subprocess.run(["tmux", "-L", sock, "capture-pane", "-p"],
+                              capture_output=True, text=True).stdout
+        t2 = float(seen.split("t = ")[-1].split()[0].replace(",", ""))
+        assert t2 > t1  # it moves with the paced sample time
+        out.write_text(seen)
+    finally:
+        subprocess.run(["tmux", "-L", sock, "kill-server"], capture_output=True)
+
+
+# -- 9: utc in a replay of a capture -------------------------------------------------------------
+
+
+def test_capture_replay_carries_utc(work):
+    import numpy as np
+
+    from streamcond.io.capture import CaptureWriter
+
+    raw = DEMO.read_bytes().splitlines()[:2501]  # header + 10 s
+    lines = [b",".join(line.split(b",")[1:]) for line in raw]
+    t0 = 1764654207.0
+    w = CaptureWriter(work / "cap.txt")
+    w.write(lines, t0 + np.r_[0.0, np.arange(len(lines) - 1) * 0.004])
+    w.close()
+    cfg = work / "host.toml"
+    cfg.write_text(CONFIG.read_text().replace('time_column = "t_ms"', "").replace("time_scale = 0.001", ""))
+    r = run_cli("replay", "cap.txt", "-c", cfg.name, "--events", "-", cwd=work)
+    assert r.returncode == 0, r.stderr
+    recs = [json.loads(l) for l in r.stdout.splitlines()]
+    assert recs and all("utc" in x for x in recs if x["kind"] in ("edge", "state", "stats"))
+    from datetime import datetime
+
+    for x in recs:
+        if "utc" in x and x["kind"] == "edge":
+            # host time is sample time here: utc is t itself, as a date (ISO 8601 parser)
+            got = datetime.fromisoformat(x["utc"].replace("Z", "+00:00")).timestamp()
+            assert got == pytest.approx(x["t"], abs=1e-6)
