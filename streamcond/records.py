@@ -39,20 +39,24 @@ TIME_DECIMALS = 9
 SIGNIFICANT = 10
 
 
+_TIME_KEYS: dict[str, bool] = {}
+
+
 def _is_time_key(key: str) -> bool:
-    return key in ("t", "t_end") or key.endswith("_s")
+    hit = _TIME_KEYS.get(key)
+    if hit is None:
+        hit = _TIME_KEYS[key] = key in ("t", "t_end") or key.endswith("_s")
+    return hit
 
 
 def _round_value(v: float, is_time: bool) -> float | None:
-    if not math.isfinite(v):
-        return None  # JSON has no NaN/Infinity: a value that is not known is null
+    if v - v != 0.0:
+        return None  # NaN or ±inf: JSON has none; a value that is not known is null
     if is_time:
-        r = round(v, TIME_DECIMALS)
-    elif v == 0.0:
+        return round(v, TIME_DECIMALS)
+    if v == 0.0:
         return 0.0
-    else:
-        r = float(f"{v:.{SIGNIFICANT}g}")
-    return r
+    return float(f"{v:.{SIGNIFICANT}g}")
 
 
 def _walk(v: Any, is_time: bool) -> Any:
@@ -68,7 +72,16 @@ def _walk(v: Any, is_time: bool) -> Any:
 def rounded(record: dict[str, Any]) -> dict[str, Any]:
     """A copy of ``record`` with its numbers rounded to what they mean (see the module doc):
     times to the nanosecond, other floats to :data:`SIGNIFICANT` digits, NaN/inf to null."""
-    return _walk(record, False)
+    out: dict[str, Any] = {}
+    for k, v in record.items():
+        tv = type(v)
+        if tv is float:
+            out[k] = _round_value(v, _is_time_key(k))
+        elif tv is int or tv is str or tv is bool or v is None:
+            out[k] = v  # the common case, no walk
+        else:
+            out[k] = _walk(v, _is_time_key(k))
+    return out
 
 
 def to_json(record: dict[str, Any]) -> str:
