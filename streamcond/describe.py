@@ -41,8 +41,7 @@ def _resolved(cfg: Config) -> tuple[dict[str, Any], dict[str, str], dict[str, An
     for i, (ch, out) in enumerate(zip(cfg.channel, d["channel"])):
         at = f"channel[{i}]"
         if ch.column is None:
-            out["column"] = ch.source_column
-            notes[f"{at}.column"] = "default: the channel's name"
+            derived[f"{at}.column"] = ch.source_column  # the channel's name
         if isinstance(ch.band, FixedBand):
             out["band"] = {"mode": "fixed", "low": ch.band.low, "high": ch.band.high}
             notes[f"{at}.band"] = f"center {_num(ch.band.center)}, width {_num(ch.band.width)}"

@@ -243,3 +243,28 @@ def test_channels_named_by_name_and_line(tmp_path):
     assert r.stderr.strip() == (
         "In channel 'pump' (line 9): channel[1].band.low (4) must be below channel[1].band.high (2)."
     )
+
+
+def test_check_round_trip_of_every_kind_of_table(tmp_path):
+    src = tmp_path / "full.toml"
+    src.write_text(
+        '[source]\nkind = "file"\nsample_rate_hz = 100.0\ncolumns = ["a", "b"]\n'
+        '[[channel]]\nname = "a"\nfilter = { kind = "ema", tau_s = 0.05 }\n'
+        'band = { mode = "adaptive", center = 1.0, initial_width = 0.3 }\n'
+        'measure = { pulses_per_rev = 2, rate_per = "s" }\nfault = { at_or_below = -5 }\n'
+        '[[channel]]\nname = "b"\nband = { center = 0.1, width = 0.2 }\n'
+        '[output]\nevents = "x.jsonl"\nrotate = { max_age_s = 3600 }\n[output.mqtt]\nclient_id = "me"\n'
+    )
+    first = run_cli("check", "-c", str(src))
+    assert first.returncode == 0, first.stderr
+    out = tmp_path / "resolved.toml"
+    out.write_text(first.stdout)
+    again = run_cli("check", "-c", str(out))
+    assert again.returncode == 0, again.stderr
+    assert again.stdout == first.stdout
+    assert load_config(src) == load_config(out)  # the same config, every field
+    # EMA delay (1−α)/α samples, α = 1 − exp(−Δt/τ): the first-order IIR's DC group delay
+    import math
+
+    a = 1 - math.exp(-0.01 / 0.05)
+    assert f"delay {(1 - a) / a:.12g} samples" in first.stdout
