@@ -366,6 +366,11 @@ def _replay(args: argparse.Namespace) -> int:
             writer.abort()
     if not args.quiet:
         print(summary_line(res.summary), file=sys.stderr)
+        if writer.path is not None:  # say what was written where
+            how = {"new": "a new file", "replace": "replaced", "append": "appended"}[mode]
+            print(f"{writer.written:,} records written to {target} ({how}"
+                  + (f", {writer.rotations} rotation(s)" if writer.rotations else "") + ").",
+                  file=sys.stderr)
     if expected is None:
         return EXIT_OK
     diff = compare(edges_of(expected), edges_of(res.records), args.tolerance)

@@ -109,7 +109,8 @@ def test_update_golden_is_the_explicit_act_and_says_what_changed(work):
 
 def test_existing_events_file_needs_force_or_append(work):
     out = work / "out.jsonl"
-    assert _replay(work, "--events", out.name).returncode == 0
+    r = _replay(work, "--events", out.name)
+    assert r.returncode == 0 and "records written to out.jsonl (a new file)" in r.stderr
     first = out.read_text()
     n = len(first.splitlines())
     r = _replay(work, "--events", out.name)
