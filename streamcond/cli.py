@@ -337,7 +337,9 @@ def _replay(args: argparse.Namespace) -> int:
         size = os.path.getsize(args.recording)
     except OSError:
         size = 0
-    progress = Progress(size, enabled=False if args.no_progress else None)
+    # no progress line between records printed on the same terminal
+    on_screen = target == "-" and sys.stdout.isatty()
+    progress = Progress(size, enabled=False if (args.no_progress or on_screen) else None)
     ok = False
     try:
         res = run_replay(
