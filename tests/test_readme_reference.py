@@ -118,3 +118,28 @@ def test_source_path_is_what_replay_reads_without_recording(tmp_path):
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout.splitlines()[-1])["rows"] == 45000
     assert "the recording `replay` reads when no RECORDING is given" in README
+
+
+def test_quick_start_sample_output_is_what_replay_prints():
+    # the README shows records of the demo replay, numbers rounded; each full line shown must be
+    # a line of the real output (lines with "..." are abbreviated and only their start is checked)
+    r = subprocess.run(
+        [sys.executable, "-m", "streamcond", "replay", "replay_data/orchard_pump.csv", "-c",
+         "config/orchard_pump.toml", "--events", "-"],
+        cwd=ROOT, capture_output=True, text=True,
+    )
+    assert r.returncode == 0, r.stderr
+    out = r.stdout.splitlines()
+    quick = README.split("## Quick start")[1].split("## What it does")[0]
+    shown = [l for l in quick.splitlines() if l.startswith('{"kind"')]
+    assert len(shown) >= 8
+    for line in shown:
+        if "..." in line:
+            head = line.split("...")[0]
+            assert any(o.startswith(head) for o in out), line
+        else:
+            assert line in out, line
+    # "the 1,767 flow pulses the recording holds": the generator's count (truth file)
+    truth = json.loads((ROOT / "replay_data" / "orchard_pump.truth.json").read_text())
+    assert "1,767 flow" in quick and truth["flow"]["pulses"] == 1767
+    assert json.loads(out[-1])["totals"]["flow"]["total"] == 1767
