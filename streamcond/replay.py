@@ -73,7 +73,9 @@ def open_recording(
         )
     host_time = capture and src.host_time
     if capture:
-        return parser, read_capture_blocks(recording, parser, host_time, block_bytes), host_time
+        # the rows always carry the recorded host time (a last column): the sample time when
+        # the data has none, and the wall-clock stamp (``utc``) of the records either way
+        return parser, read_capture_blocks(recording, parser, True, block_bytes), host_time
     return parser, read_blocks(recording, parser, block_bytes), host_time
 
 
@@ -125,10 +127,11 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
+    with_host_column = is_capture(recording)  # see open_recording
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)
-        return Pipeline(cfg, columns + [HOST_T] if host_time else columns, host_time=host_time)
+        return Pipeline(cfg, columns + [HOST_T] if with_host_column else columns, host_time=host_time)
 
     pipe: Pipeline | None = None
     res = ReplayResult()

@@ -364,3 +364,27 @@ def test_capture_replay_carries_utc(work):
             # host time is sample time here: utc is t itself, as a date (ISO 8601 parser)
             got = datetime.fromisoformat(x["utc"].replace("Z", "+00:00")).timestamp()
             assert got == pytest.approx(x["t"], abs=1e-6)
+
+
+def test_capture_with_a_time_column_carries_utc_from_its_host_times(work):
+    # a capture of the demo's own lines (device clock t_ms) received 0.3 s after each sample:
+    # sample time stays the device's, utc is the host clock of the same instant
+    import numpy as np
+
+    from streamcond.io.capture import CaptureWriter
+
+    raw = DEMO.read_bytes().splitlines()[:2501]
+    t0 = 1764654207.0
+    w = CaptureWriter(work / "cap.txt")
+    w.write(raw, t0 + 0.3 + np.r_[0.0, np.arange(len(raw) - 1) * 0.004])
+    w.close()
+    r = run_cli("replay", "cap.txt", "-c", "orchard_pump.toml", "--events", "-", cwd=work)
+    assert r.returncode == 0, r.stderr
+    recs = [json.loads(l) for l in r.stdout.splitlines()]
+    edges = [x for x in recs if x["kind"] == "edge"]
+    assert edges and all(x["t"] < 11.0 for x in edges)  # the device's time base
+    from datetime import datetime
+
+    for x in edges:
+        got = datetime.fromisoformat(x["utc"].replace("Z", "+00:00")).timestamp()
+        assert got == pytest.approx(t0 + 0.3 + x["t"], abs=2e-6)
