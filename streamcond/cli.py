@@ -181,6 +181,11 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     c.add_argument("--json", action="store_true", help="print the resolved settings as JSON")
 
+    from .circuit.cli import DESCRIPTION as CIRCUIT_DESCRIPTION, HELP as CIRCUIT_HELP
+    from .circuit.cli import add_arguments as circuit_arguments
+
+    circuit_arguments(cmd("circuit", CIRCUIT_HELP, CIRCUIT_DESCRIPTION))
+
     b = cmd(
         "bench",
         "measure throughput on this machine",
@@ -244,6 +249,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "circuit":
+            from .circuit.cli import main as circuit_main
+
+            return circuit_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 
