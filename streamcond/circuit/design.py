@@ -179,20 +179,26 @@ def design(spec: Spec) -> Design:
     sp = spread(spec.circuit, choice.resistors, cond, spec.tolerances(), spec.ref_follows_supply)
     warnings: list[str] = []
     hyst = spec.want_high - spec.want_low
-    ref_needed = None
-    if choice.error > 0.05 * hyst:
-        ref_needed = reference_for(spec.circuit, spec.want_low, spec.want_high, cond)
-        if spec.circuit == "single-supply":
+    ref_needed = reference_for(spec.circuit, spec.want_low, spec.want_high, cond)
+    if ref_needed is not None and abs(ref_needed - float(cond.v_ref)) > 0.01 * hyst:
+        warnings.append(
+            f"With the reference at {float(cond.v_ref):g} V this circuit cannot place both "
+            f"thresholds (it sets the hysteresis, and the reference sets where it sits): a "
+            f"reference of {ref_needed:.4g} V would (--ref), or use the single-supply circuit, "
+            f"whose divider makes its own reference"
+        )
+    elif ref_needed is None:
+        if not _reachable(spec, cond):
             warnings.append(
-                f"No {spec.series} network in the range comes within 5 % of the hysteresis of "
-                f"the request: the thresholds may lie outside what the supply and the output "
-                f"swing can reach"
+                "These thresholds lie outside what this supply and output swing can reach "
+                "with a divider: each threshold must lie between ground and the divider's top, "
+                "and the hysteresis must be smaller than the output's swing"
             )
-        elif ref_needed is not None:
+        elif choice.error > 0.02 * hyst:
             warnings.append(
-                f"With the reference at {cond.v_ref:g} V this circuit cannot place both "
-                f"thresholds: a reference of {ref_needed:.4g} V would (--ref), or use the "
-                f"single-supply circuit, whose divider makes its own reference"
+                f"The nearest {spec.series} network misses the request by "
+                f"{choice.error * 1e3:.3g} mV ({choice.error / hyst * 100:.2g} % of the "
+                f"hysteresis); a finer series (--series E96) or a wider --range comes closer"
             )
     if not sp.monotone:
         warnings.append(
@@ -203,6 +209,23 @@ def design(spec: Spec) -> Design:
     margin = _margin(spec, sp, rc) if spec.evidence is not None else None
     return Design(spec, choice, float(out_lo), float(out_hi), sp, ref_needed, rc, rc_note,
                   margin, warnings)
+
+
+def _reachable(spec: Spec, cond: Conditions) -> bool:
+    """Whether a single-supply divider can meet the request with a push-pull output.
+
+    With a = hysteresis/swing the node's weights are a (output), t = (L − a·V_ol)/V_top
+    (top) and 1 − a − t (bottom); all three must be positive. An open-drain output moves
+    the figures a little (the pull-up), so this is a guide, not a proof, there.
+    """
+    v_lo, v_hi = output_levels(cond)
+    swing = float(v_hi - v_lo)
+    top = float(cond.v_ref)
+    if swing <= 0 or top <= 0:
+        return False
+    a = (spec.want_high - spec.want_low) / swing
+    t = (spec.want_low - a * float(v_lo)) / top
+    return 0 < a < 1 and t > 0 and a + t < 1
 
 
 def _rc(spec: Spec) -> tuple[rcfilter.RCFilter | None, str | None]:

@@ -10,6 +10,7 @@ from pathlib import Path
 from ..errors import InputError
 from .design import Design
 from .eseries import format_ohms
+from .report import mv_text
 
 
 def _libraries():
@@ -119,7 +120,7 @@ def draw_transfer(ax, d: Design) -> None:  # noqa: ANN001
     ax.set_xlabel("input (V)")
     ax.set_ylabel("output (V)")
     ax.set_title(f"transfer characteristic: thresholds {lo:.4f} V and {hi:.4f} V, "
-                 f"hysteresis {(hi - lo) * 1e3:.3g} mV", fontsize=10)
+                 f"hysteresis {mv_text(hi - lo)}", fontsize=10)
     ax.legend(loc="center right" if d.inverted else "center left", fontsize=8)
     ax.grid(alpha=0.3)
 

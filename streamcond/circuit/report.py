@@ -64,7 +64,7 @@ def verdict(d: Design) -> str:
             )
         return (
             f"Every unit built stays within the worst-case thresholds above; the band all of "
-            f"them share is {lo_w:.4f} to {hi_w:.4f} V ({(hi_w - lo_w) * 1e3:.3g} mV)."
+            f"them share is {lo_w:.4f} to {hi_w:.4f} V ({mv_text(hi_w - lo_w)})."
         )
     rate = _rate(m.rate_per_hour)
     tgt = _rate(m.target_rate_per_hour)
@@ -82,9 +82,10 @@ def verdict(d: Design) -> str:
         )
     if m.too_wide and m.plateau_width is not None:
         s += (
-            f" At the other extreme the band is wider ({(d.spread.widest[1] - d.spread.widest[0]) * 1e3:.3g} mV) "
-            f"than the widest that still counted every real transition on the recording "
-            f"({m.plateau_width * 1e3:.3g} mV): some units would miss small real changes."
+            f" At the other extreme the band is wider "
+            f"({mv_text(d.spread.widest[1] - d.spread.widest[0])}) than the widest that still counted "
+            f"every real transition on the recording ({mv_text(m.plateau_width)}): some units would "
+            f"miss small real changes."
         )
     return s
 
@@ -190,7 +191,7 @@ def _span(a: float, b: float) -> str:
     return f"{a:.4f} to {b:.4f} V"
 
 
-def _mv(x: float) -> str:
+def mv_text(x: float) -> str:
     return f"{x * 1e3:.3g} mV" if abs(x) < 1 else f"{x:.4g} V"
 
 
@@ -227,20 +228,24 @@ def format_text(d: Design, plot_path: str | None = None) -> str:
     ev = s.evidence
     if ev is not None:
         u = f" {ev.unit}" if ev.unit else ""
+        off = f" − {ev.offset:g}" if ev.offset > 0 else (f" + {-ev.offset:g}" if ev.offset else "")
         lines.append(
-            f"  from         channel {ev.channel}: the {ev.band_from} band {ev.low:.6g}–"
-            f"{ev.high:.6g}{u} = (value − {ev.offset:g})/{ev.gain:g} × {ev.volts_per_raw:g} V"
+            f"  from         channel {ev.channel}: the {ev.band_from} band {ev.low:.6g} to "
+            f"{ev.high:.6g}{u}; volts = (value{off})/{ev.gain:g} × {ev.volts_per_raw:g}"
         )
     lines += [
         f"  asked        low {_v(s.want_low)}   high {_v(s.want_high)}   hysteresis "
-        f"{_mv(s.want_high - s.want_low)}",
+        f"{mv_text(s.want_high - s.want_low)}",
     ]
     ref = s.conditions().v_ref
     if s.circuit != "single-supply" or s.ref is not None:
         where = ("ground" if s.ref is None else f"{ref:g} V (±{s.ref_tolerance * 100:g} %)")
         lines.append(f"  reference    {where}")
+    places = dict(PLACES)
+    if s.ref is not None:
+        places["r_top"] = "reference → V+"
     lines.append("  resistors    " + "   ".join(
-        f"{k} {format_ohms(v)} ({PLACES[k]})" for k, v in ch.resistors.items()))
+        f"{k} {format_ohms(v)} ({places[k]})" for k, v in ch.resistors.items()))
     lines.append(f"  output       low {d.output_low:g} V, high {d.output_high:g} V"
                  + (" (unloaded, through the pull-up)" if s.open_drain else "")
                  + ("; low above the upper threshold (inverted)" if d.inverted
@@ -248,21 +253,21 @@ def format_text(d: Design, plot_path: str | None = None) -> str:
     lines.append(
         f"  nominal      low {_v(ch.low)} ({_dmv(ch.low - s.want_low)})   high "
         f"{_v(ch.high)} ({_dmv(ch.high - s.want_high)})   hysteresis "
-        f"{_mv(ch.high - ch.low)}"
+        f"{mv_text(ch.high - ch.low)}"
     )
     lines.append(
         f"  worst case   low {_span(*sp.low)}   high {_span(*sp.high)}   hysteresis "
-        f"{_mv(sp.hysteresis[0])} to {_mv(sp.hysteresis[1])}"
+        f"{mv_text(sp.hysteresis[0])} to {mv_text(sp.hysteresis[1])}"
         f"   (corners{'' if sp.monotone else ', estimate'})"
     )
     lines.append(
         f"  Monte Carlo  low {_span(*sp.mc_low)}   high {_span(*sp.mc_high)}   hysteresis "
-        f"{_mv(sp.mc_hysteresis[0])} to {_mv(sp.mc_hysteresis[1])}   (0.1 % and 99.9 % points "
+        f"{mv_text(sp.mc_hysteresis[0])} to {mv_text(sp.mc_hysteresis[1])}   (0.1 % and 99.9 % points "
         f"of {DRAWS:,} draws)"
     )
     parts = sorted(sp.contributions.items(), key=lambda kv: -kv[1])
     lines.append("  shares       " + ", ".join(
-        f"{k} ±{_mv(v)}" for k, v in parts[:4]) + "  (largest threshold move, each alone)")
+        f"{k} ±{mv_text(v)}" for k, v in parts[:4]) + "  (largest threshold move, each alone)")
     lines.append(
         f"  tolerances   resistors ±{s.resistor_tolerance * 100:g} %, supply "
         f"±{s.supply_tolerance * 100:g} %, comparator offset ±{s.v_os * 1e3:g} mV"
@@ -283,7 +288,7 @@ def format_text(d: Design, plot_path: str | None = None) -> str:
                ev.filter_kind != "none" else "of the signal as recorded"
                if ev.filter_kind == "none" else
                f"before the prefilter: the comparator does not see the {ev.filter_text} filter")
-        lines.append(f"  noise        σ̂ {_mv(m.sigma)}, ν0 {m.nu0_hz:.3g} Hz ({how})")
+        lines.append(f"  noise        σ̂ {mv_text(m.sigma)}, ν0 {m.nu0_hz:.3g} Hz ({how})")
         lines.append(
             f"  margin       {m.margin_sigma:.2f}σ̂ from the centre {m.center:.4f} V to the nearer "
             f"worst-case threshold; Rice: {_rate(m.rate_per_hour)} false edges per hour"
