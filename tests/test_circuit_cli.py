@@ -164,23 +164,23 @@ def test_help_explains_each_circuit(capsys):
         assert word in out
 
 
-def test_readme_example_is_what_the_command_prints(capsys):
-    # the README's worked example: its command, run here, prints exactly the block shown
+def test_readme_examples_are_what_the_command_prints(capsys, tmp_path, monkeypatch):
+    # the README's worked examples: each command, run here, prints exactly the block shown
+    # (a --plot goes to a temporary file, and the picture line is read with that path)
     text = (ROOT / "README.md").read_text(encoding="utf-8")
-    m = re.search(r"<!-- circuit-example -->\s*```(?:sh|console)?\n\$ (.+?)\n(.*?)```", text,
-                  re.S)
-    assert m, "README.md lacks the circuit worked example"
-    cmd = m.group(1).replace("\\\n", " ")
-    argv = shlex.split(cmd)
-    assert argv[:2] == ["streamcond", "circuit"]
-    import os
-
-    cwd = os.getcwd()
-    os.chdir(ROOT)
-    try:
-        code, out, _ = run(capsys, *argv[2:])
-    finally:
-        os.chdir(cwd)
-    assert code == 0
-    assert out == m.group(2), ("README circuit example is stale: re-run its command and paste "
-                               "the output")
+    blocks = re.findall(r"<!-- circuit-example -->\s*```console\n\$ (.+?)\n(.*?)```", text,
+                        re.S)
+    assert len(blocks) >= 2, "README.md lacks the circuit worked examples"
+    monkeypatch.chdir(ROOT)
+    for cmd, shown in blocks:
+        argv = shlex.split(cmd)
+        assert argv[:2] == ["streamcond", "circuit"]
+        argv = argv[2:]
+        if "--plot" in argv:
+            i = argv.index("--plot") + 1
+            shown = shown.replace(f"picture      {argv[i]}", f"picture      {tmp_path / 'p.png'}")
+            argv[i] = str(tmp_path / "p.png")
+        code, out, _ = run(capsys, *argv)
+        assert code == 0
+        assert out == shown, ("README circuit example is stale: re-run its command and paste "
+                              "the output")

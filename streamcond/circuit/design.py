@@ -103,7 +103,7 @@ class Margin:
     rate_per_hour: float
     target_rate_per_hour: float
     holds: bool
-    too_wide: bool  # the widest worst-case band is wider than the plateau: real steps missed
+    too_wide: bool  # the largest worst-case hysteresis is wider than the plateau
     plateau_width: float | None
 
 
@@ -195,10 +195,12 @@ def design(spec: Spec) -> Design:
                 "and the hysteresis must be smaller than the output's swing"
             )
         elif choice.error > 0.02 * hyst:
+            finer = "a wider --range" if spec.series == "E96" else \
+                "a finer series (--series E96) or a wider --range"
             warnings.append(
                 f"The nearest {spec.series} network misses the request by "
                 f"{choice.error * 1e3:.3g} mV ({choice.error / hyst * 100:.2g} % of the "
-                f"hysteresis); a finer series (--series E96) or a wider --range comes closer"
+                f"hysteresis); {finer} may come closer"
             )
     if not sp.monotone:
         warnings.append(
@@ -263,6 +265,7 @@ def _margin(spec: Spec, sp: Spread, rc: rcfilter.RCFilter | None) -> Margin:
     else:
         m, rate = math.inf, 0.0
     plateau = None if ev.plateau_width_max is None else ev.plateau_width_max * abs(ev.scale)
-    wide = plateau is not None and (sp.widest[1] - sp.widest[0]) > plateau
+    # a unit's band is its hysteresis: wider than the plateau, it misses real transitions
+    wide = plateau is not None and sp.hysteresis[1] > plateau
     return Margin(c, sigma, nu0, filtered, d, m, rate, target, d > 0 and rate <= target,
                   wide, plateau)

@@ -138,7 +138,8 @@ def plot(d: Design, path: str | Path) -> None:
         s = d.spec
         head = (f"streamcond circuit — {s.circuit}, {s.output}, {s.series} "
                 f"±{s.resistor_tolerance * 100:g} %")
-        fig.suptitle(head + "\n" + textwrap.fill(verdict(d), 150), fontsize=10)
+        text = textwrap.fill(verdict(d), 150).replace("σ̂", r"$\hat\sigma$")
+        fig.suptitle(head + "\n" + text, fontsize=10)
         fig.tight_layout()
         fig.savefig(path)
     except OSError as e:

@@ -74,18 +74,23 @@ def verdict(d: Design) -> str:
             f"case (Rice: {rate} false edges per hour from noise alone, target {tgt})."
         )
     else:
-        near = (f"comes within {m.margin_sigma:.1f}σ̂ of the centre" if m.distance > 0
-                else "leaves the centre outside the band")
-        s = (
-            f"It does not hold the measured noise: at worst case the band {near} (Rice: {rate} "
-            f"false edges per hour, target {tgt}); the largest share is {what}: {_CURES[dom]}."
-        )
+        if m.distance > 0:
+            s = (
+                f"It does not hold the measured noise: at worst case a threshold comes within "
+                f"{m.margin_sigma:.1f}σ̂ of the centre (Rice: {rate} false edges per hour, target "
+                f"{tgt}); the largest share is {what}: {_CURES[dom]}."
+            )
+        else:
+            s = (
+                f"It does not hold: at worst case a threshold lies {mv_text(-m.distance)} past "
+                f"the band's centre — the tolerances move the band by more than its half-width; "
+                f"the largest share is {what}: {_CURES[dom]}."
+            )
     if m.too_wide and m.plateau_width is not None:
         s += (
-            f" At the other extreme the band is wider "
-            f"({mv_text(d.spread.widest[1] - d.spread.widest[0])}) than the widest that still counted "
-            f"every real transition on the recording ({mv_text(m.plateau_width)}): some units would "
-            f"miss small real changes."
+            f" At the other extreme the hysteresis ({mv_text(d.spread.hysteresis[1])}) is wider "
+            f"than the widest band that still counted every real transition on the recording "
+            f"({mv_text(m.plateau_width)}): some units would miss small real changes."
         )
     return s
 
@@ -289,10 +294,17 @@ def format_text(d: Design, plot_path: str | None = None) -> str:
                if ev.filter_kind == "none" else
                f"before the prefilter: the comparator does not see the {ev.filter_text} filter")
         lines.append(f"  noise        σ̂ {mv_text(m.sigma)}, ν0 {m.nu0_hz:.3g} Hz ({how})")
-        lines.append(
-            f"  margin       {m.margin_sigma:.2f}σ̂ from the centre {m.center:.4f} V to the nearer "
-            f"worst-case threshold; Rice: {_rate(m.rate_per_hour)} false edges per hour"
-        )
+        if m.distance > 0:
+            lines.append(
+                f"  margin       {m.margin_sigma:.2f}σ̂ from the centre {m.center:.4f} V to the "
+                f"nearer worst-case threshold; Rice: {_rate(m.rate_per_hour)} false edges per "
+                f"hour"
+            )
+        else:
+            lines.append(
+                f"  margin       none: a worst-case threshold lies {mv_text(-m.distance)} past "
+                f"the centre {m.center:.4f} V ({m.margin_sigma:.1f}σ̂)"
+            )
     for w in d.warnings:
         lines.append(f"  note         {w}")
     if plot_path:
