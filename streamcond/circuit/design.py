@@ -207,7 +207,20 @@ def design(spec: Spec) -> Design:
             "A threshold is not monotone in some quantity over the tolerance box, so the "
             "corner bounds are estimates; the Monte Carlo points still hold"
         )
+    if spec.evidence is not None and spec.evidence.scale < 0:
+        warnings.append(
+            "The scaling is negative (gain × --volts-per-raw < 0): a rising value is a falling "
+            "voltage at the input, so the output's sense is turned over against the channel's"
+        )
     rc, rc_note = _rc(spec)
+    if rc is not None and abs(rc.error) > 0.05:
+        warnings.append(
+            f"No standard R ({eseries.format_ohms(rcfilter.R_RANGE[0])}–"
+            f"{eseries.format_ohms(rcfilter.R_RANGE[1])}) and C "
+            f"({eseries.format_farads(rcfilter.C_RANGE[0])}–"
+            f"{eseries.format_farads(rcfilter.C_RANGE[1])}) come within 5 % of τ = "
+            f"{rc.tau_wanted:g} s"
+        )
     margin = _margin(spec, sp, rc) if spec.evidence is not None else None
     return Design(spec, choice, float(out_lo), float(out_hi), sp, ref_needed, rc, rc_note,
                   margin, warnings)
