@@ -180,7 +180,15 @@ def design(spec: Spec) -> Design:
     warnings: list[str] = []
     hyst = spec.want_high - spec.want_low
     ref_needed = reference_for(spec.circuit, spec.want_low, spec.want_high, cond)
-    if ref_needed is not None and abs(ref_needed - float(cond.v_ref)) > 0.01 * hyst:
+    rails = (spec.v_neg, spec.v_pos)
+    if ref_needed is not None and not rails[0] <= ref_needed <= rails[1] \
+            and abs(ref_needed - float(cond.v_ref)) > 0.01 * hyst:
+        warnings.append(
+            f"This circuit cannot place both thresholds: it would need a reference of "
+            f"{ref_needed:.4g} V, outside the supply; use the single-supply circuit, or another "
+            f"supply"
+        )
+    elif ref_needed is not None and abs(ref_needed - float(cond.v_ref)) > 0.01 * hyst:
         warnings.append(
             f"With the reference at {float(cond.v_ref):g} V this circuit cannot place both "
             f"thresholds (it sets the hysteresis, and the reference sets where it sits): a "
@@ -202,6 +210,11 @@ def design(spec: Spec) -> Design:
                 f"{choice.error * 1e3:.3g} mV ({choice.error / hyst * 100:.2g} % of the "
                 f"hysteresis); {finer} may come closer"
             )
+    if spec.circuit != "non-inverting" and (spec.want_low < rails[0] or spec.want_high > rails[1]):
+        warnings.append(
+            "A threshold lies outside the supply rails, where the signal on the comparator's "
+            "input cannot go (its inputs must stay within their common-mode range)"
+        )
     if not sp.monotone:
         warnings.append(
             "A threshold is not monotone in some quantity over the tolerance box, so the "

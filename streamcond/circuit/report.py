@@ -188,7 +188,9 @@ def _v(x: float) -> str:
 
 
 def _dmv(x: float) -> str:
-    """A signed error in millivolts (no "-0.00")."""
+    """A signed error in millivolts, volts when large (no "-0.00")."""
+    if abs(x) >= 1:
+        return f"{x:+.4g} V"
     return f"{round(x * 1e3, 2) + 0.0:+.2f} mV"
 
 
