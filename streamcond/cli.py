@@ -31,6 +31,7 @@ examples:
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
+  streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
 
 exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input."""

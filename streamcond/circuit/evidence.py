@@ -29,8 +29,14 @@ from ..errors import InputError
 
 
 def _tune() -> Any:
-    """The tune analysis module (``run``, ``rice_rate_per_hour``,
-    ``DEFAULT_TARGET_RATE_PER_HOUR``): the one import of it in this package."""
+    """The tune analysis module: the one import of it in this package.
+
+    Used from it: ``run(config, recording, channel, target_rate) -> (result, data)`` with
+    ``result.suggestion`` (``width``, ``center``), ``result.sigma``, ``.nu0_hz``,
+    ``.filter_text``, ``.target_rate_per_hour``, ``.plateau`` (``width_max``), ``.samples``,
+    ``.duration_s``, and ``data.channel``, ``.v``, ``.good``, ``.fs``;
+    ``rice_rate_per_hour(width, sigma, nu0_hz)``; ``DEFAULT_TARGET_RATE_PER_HOUR``.
+    """
     from .. import tune
 
     return tune

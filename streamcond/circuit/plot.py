@@ -114,6 +114,11 @@ def draw_transfer(ax, d: Design) -> None:  # noqa: ANN001
     ax.plot([], [], color="0.4", lw=0.8, ls=":", label="Monte Carlo 0.1 % / 99.9 %")
     ax.axvline(d.spec.want_low, color="k", lw=0.8, ls="-.", alpha=0.6)
     ax.axvline(d.spec.want_high, color="k", lw=0.8, ls="-.", alpha=0.6, label="asked")
+    m = d.margin
+    if m is not None:
+        ax.axvline(m.center, color="C2", lw=1.0, ls="--",
+                   label=f"band centre; noise $\\hat\\sigma$ = {mv_text(m.sigma)}")
+        ax.axvspan(m.center - m.sigma, m.center + m.sigma, color="C2", alpha=0.10)
     ax.set_xlim(x0, x1)
     pad = 0.08 * (v_hi - v_lo)
     ax.set_ylim(v_lo - pad, v_hi + pad)
