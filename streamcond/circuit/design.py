@@ -226,6 +226,13 @@ def design(spec: Spec) -> Design:
             "voltage at the input, so the output's sense is turned over against the channel's"
         )
     rc, rc_note = _rc(spec)
+    if spec.circuit == "non-inverting":
+        # the source drives r_in and r_feedback in series, so its own resistance adds to r_in
+        extra = " and so does the input RC's resistor (put it before a buffer)" if rc else ""
+        warnings.append(
+            f"The non-inverting circuit loads the signal through r_in: the source's own "
+            f"resistance adds to r_in and shifts the thresholds{extra}"
+        )
     if rc is not None and abs(rc.error) > 0.05:
         warnings.append(
             f"No standard R ({eseries.format_ohms(rcfilter.R_RANGE[0])}–"
