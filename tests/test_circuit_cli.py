@@ -182,5 +182,5 @@ def test_readme_examples_are_what_the_command_prints(capsys, tmp_path, monkeypat
             argv[i] = str(tmp_path / "p.png")
         code, out, _ = run(capsys, *argv)
         assert code == 0
-        assert out == shown, ("README circuit example is stale: re-run its command and paste "
-                              "the output")
+        assert out == shown, ("README circuit example is stale: run tools/circuit_readme.py "
+                              "and review the diff")

@@ -273,8 +273,11 @@ def format_text(d: Design, plot_path: str | None = None) -> str:
         f"of {DRAWS:,} draws)"
     )
     parts = sorted(sp.contributions.items(), key=lambda kv: -kv[1])
+    short = {"v_pos": "supply", "v_neg": "negative supply", "v_ref": "reference",
+             "v_os": "offset", "loss_high": "output high", "loss_low": "output low"}
     lines.append("  shares       " + ", ".join(
-        f"{k} ±{mv_text(v)}" for k, v in parts[:4]) + "  (largest threshold move, each alone)")
+        f"{short.get(k, k)} ±{mv_text(v)}" for k, v in parts[:4])
+        + "  (largest threshold move, each alone)")
     lines.append(
         f"  tolerances   resistors ±{s.resistor_tolerance * 100:g} %, supply "
         f"±{s.supply_tolerance * 100:g} %, comparator offset ±{s.v_os * 1e3:g} mV"
