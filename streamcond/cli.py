@@ -35,6 +35,7 @@ examples:
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl   # add --update-golden to renew it
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
+  streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
 
 exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input,
@@ -229,6 +230,11 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     c.add_argument("--json", action="store_true", help="print the resolved settings as JSON")
 
+    from .circuit.cli import DESCRIPTION as CIRCUIT_DESCRIPTION, HELP as CIRCUIT_HELP
+    from .circuit.cli import add_arguments as circuit_arguments
+
+    circuit_arguments(cmd("circuit", CIRCUIT_HELP, CIRCUIT_DESCRIPTION))
+
     b = cmd(
         "bench",
         "measure throughput on this machine",
@@ -296,6 +302,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "circuit":
+            from .circuit.cli import main as circuit_main
+
+            return circuit_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 
