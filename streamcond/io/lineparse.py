@@ -225,6 +225,7 @@ class LineParser:
         if self.columns is None:
             body = self._until_header(body, out)
             if not body:
+                out.rows = np.empty((0, self.ncols))  # the header may have set the columns
                 return out
         res = self._parse_csv(body)
         if out.bad:
