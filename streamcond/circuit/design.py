@@ -105,6 +105,7 @@ class Margin:
     holds: bool
     too_wide: bool  # the largest worst-case hysteresis is wider than the plateau
     plateau_width: float | None
+    unreliable: str | None = None  # why σ̂ may not be the noise alone (None: it is)
 
 
 @dataclass
@@ -286,6 +287,7 @@ def _margin(spec: Spec, sp: Spread, rc: rcfilter.RCFilter | None) -> Margin:
     filtered = matched or ev.filter_kind == "none"
     sigma, nu0 = ev.noise_volts(filtered)
     target = spec.target_rate_per_hour or ev.target_rate_per_hour or default_target_rate()
+    reason = ev.unreliable[0 if filtered else 1]
     c = 0.5 * (spec.want_low + spec.want_high)
     lo_w, hi_w = sp.narrowest
     d = min(hi_w - c, c - lo_w)
@@ -301,4 +303,4 @@ def _margin(spec: Spec, sp: Spread, rc: rcfilter.RCFilter | None) -> Margin:
     # a unit's band is its hysteresis: wider than the plateau, it misses real transitions
     wide = plateau is not None and sp.hysteresis[1] > plateau
     return Margin(c, sigma, nu0, filtered, d, m, rate, target, d > 0 and rate <= target,
-                  wide, plateau)
+                  wide, plateau, reason)
