@@ -141,6 +141,10 @@ def test_plot_without_libraries(capsys, tmp_path, monkeypatch):
      "no swing"),
     ([str(DEMO), "-c", str(CONFIG), "--channel", "nope", "--circuit", "inverting",
       "--supply", 5], "no channel"),
+    (["--low", 1, "--high", 2, "--circuit", "single-supply", "--supply", 5, "--series", "E96",
+      "--range", "1:10M"], "narrow --range"),
+    (["--low", 1, "--high", 2, "--circuit", "single-supply", "--supply", 5, "--force"],
+     "--plot"),
 ])
 def test_bad_usage_is_one_sentence_exit_2(capsys, argv, words):
     code, out, err = run(capsys, *argv)

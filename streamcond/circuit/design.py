@@ -28,6 +28,9 @@ DEFAULT_SUPPLY_TOLERANCE: float = 0.02
 DEFAULT_REF_TOLERANCE: float = 0.01
 DEFAULT_PULLUP: float = 10e3
 DEFAULT_RANGE: tuple[float, float] = (1e3, 1e6)
+#: The triple search visits n³ networks (six decades of E96: 577 values, 1.9·10^8 networks,
+#: some seconds); more would take minutes.
+MAX_TRIPLE_VALUES: int = 600
 
 
 @dataclass
@@ -167,6 +170,11 @@ def design(spec: Spec) -> Design:
     vals = eseries.values(spec.series, *spec.r_range)
     if vals.size < 2:
         raise InputError(f"The range holds fewer than two {spec.series} values; widen --range")
+    if spec.circuit == "single-supply" and vals.size > MAX_TRIPLE_VALUES:
+        raise InputError(
+            f"The range holds {vals.size} {spec.series} values, and the search tries every "
+            f"triple of them; narrow --range to at most six decades of E96 (or a coarser series)"
+        )
     r_pullup = spec.r_pullup if spec.open_drain else None
     try:
         choice = search(spec.circuit, spec.want_low, spec.want_high, vals, cond,
