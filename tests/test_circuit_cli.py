@@ -141,6 +141,10 @@ def test_plot_without_libraries(capsys, tmp_path, monkeypatch):
      "no swing"),
     ([str(DEMO), "-c", str(CONFIG), "--channel", "nope", "--circuit", "inverting",
       "--supply", 5], "no channel"),
+    (["--low", 1, "--high", 2, "--circuit", "single-supply", "--supply", 5, "--series", "E96",
+      "--range", "1:10M"], "narrow --range"),
+    (["--low", 1, "--high", 2, "--circuit", "single-supply", "--supply", 5, "--force"],
+     "--plot"),
 ])
 def test_bad_usage_is_one_sentence_exit_2(capsys, argv, words):
     code, out, err = run(capsys, *argv)
@@ -184,3 +188,19 @@ def test_readme_examples_are_what_the_command_prints(capsys, tmp_path, monkeypat
         assert code == 0
         assert out == shown, ("README circuit example is stale: run tools/circuit_readme.py "
                               "and review the diff")
+
+
+def test_plot_never_replaces_a_file_unasked_nor_an_input(capsys, tmp_path):
+    png = tmp_path / "c.png"
+    png.write_bytes(b"mine")
+    base = ["--low", 1.0, "--high", 1.2, "--circuit", "single-supply", "--supply", 5]
+    code, _, err = run(capsys, *base, "--plot", png)
+    assert code == 2 and "--force" in err and png.read_bytes() == b"mine"
+    code, _, err = run(capsys, *base, "--plot", png, "--force")
+    assert code == 0 and png.read_bytes()[:4] == b"\x89PNG"
+    cfg = tmp_path / "site.toml"
+    cfg.write_bytes(CONFIG.read_bytes())
+    before = cfg.read_bytes()
+    code, _, err = run(capsys, DEMO, "-c", cfg, "--channel", "tank_high", "--circuit",
+                       "single-supply", "--supply", 3.3, "--plot", cfg, "--force")
+    assert code == 2 and "input" in err and cfg.read_bytes() == before

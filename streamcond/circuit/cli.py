@@ -9,7 +9,6 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import os
 import sys
 from typing import Any, TextIO
 
@@ -236,7 +235,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     o = p.add_argument_group("output")
     o.add_argument("--json", action="store_true", help="machine-readable output")
     o.add_argument("--plot", metavar="FILE",
-                   help="write a picture: the schematic and the transfer characteristic")
+                   help="write a picture: the schematic and the transfer characteristic "
+                        "(PNG, SVG or PDF by the suffix)")
+    o.add_argument("--force", action="store_true", help="replace the --plot FILE if it exists")
 
 
 def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
@@ -265,6 +266,8 @@ def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
         problems.append("--pullup goes with --output open-drain")
     if args.ref_tolerance is not None and args.ref is None:
         problems.append("--ref-tolerance goes with --ref")
+    if args.force and not args.plot:
+        problems.append("--force goes with --plot")
     if problems:
         raise InputError(problems)
 
@@ -302,9 +305,14 @@ def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
         evidence=evidence,
         target_rate_per_hour=args.target_rate,
     )
+    if args.plot:  # before the work: a picture that cannot be written is said at once
+        from ..io.eventlog import check_output
+
+        check_output(args.plot, mode="replace" if args.force else "new",
+                     inputs=[("recording", args.recording), ("config", args.config)],
+                     what="picture", force_hint="--force to replace it")
     d = dz.design(spec)
     if args.plot:
-        _check_not_an_input(args.plot, args.recording, args.config)
         from .plot import plot
 
         plot(d, args.plot)
@@ -318,13 +326,3 @@ def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
     else:
         out.write(format_text(d, args.plot))
     return 0
-
-
-def _check_not_an_input(path: str, *inputs: str | None) -> None:
-    from ..errors import InputError
-
-    for i in inputs:
-        if i is not None and os.path.exists(path) and os.path.exists(i) \
-                and os.path.samefile(path, i):
-            raise InputError(f"The picture would be written over the input {i!r}; choose "
-                             f"another --plot file")

@@ -28,6 +28,9 @@ DEFAULT_SUPPLY_TOLERANCE: float = 0.02
 DEFAULT_REF_TOLERANCE: float = 0.01
 DEFAULT_PULLUP: float = 10e3
 DEFAULT_RANGE: tuple[float, float] = (1e3, 1e6)
+#: The triple search visits n³ networks (six decades of E96: 577 values, 1.9·10^8 networks,
+#: some seconds); more would take minutes.
+MAX_TRIPLE_VALUES: int = 600
 
 
 @dataclass
@@ -105,6 +108,7 @@ class Margin:
     holds: bool
     too_wide: bool  # the largest worst-case hysteresis is wider than the plateau
     plateau_width: float | None
+    unreliable: str | None = None  # why σ̂ may not be the noise alone (None: it is)
 
 
 @dataclass
@@ -166,6 +170,11 @@ def design(spec: Spec) -> Design:
     vals = eseries.values(spec.series, *spec.r_range)
     if vals.size < 2:
         raise InputError(f"The range holds fewer than two {spec.series} values; widen --range")
+    if spec.circuit == "single-supply" and vals.size > MAX_TRIPLE_VALUES:
+        raise InputError(
+            f"The range holds {vals.size} {spec.series} values, and the search tries every "
+            f"triple of them; narrow --range to at most six decades of E96 (or a coarser series)"
+        )
     r_pullup = spec.r_pullup if spec.open_drain else None
     try:
         choice = search(spec.circuit, spec.want_low, spec.want_high, vals, cond,
@@ -286,6 +295,7 @@ def _margin(spec: Spec, sp: Spread, rc: rcfilter.RCFilter | None) -> Margin:
     filtered = matched or ev.filter_kind == "none"
     sigma, nu0 = ev.noise_volts(filtered)
     target = spec.target_rate_per_hour or ev.target_rate_per_hour or default_target_rate()
+    reason = ev.unreliable[0 if filtered else 1]
     c = 0.5 * (spec.want_low + spec.want_high)
     lo_w, hi_w = sp.narrowest
     d = min(hi_w - c, c - lo_w)
@@ -301,4 +311,4 @@ def _margin(spec: Spec, sp: Spread, rc: rcfilter.RCFilter | None) -> Margin:
     # a unit's band is its hysteresis: wider than the plateau, it misses real transitions
     wide = plateau is not None and sp.hysteresis[1] > plateau
     return Margin(c, sigma, nu0, filtered, d, m, rate, target, d > 0 and rate <= target,
-                  wide, plateau)
+                  wide, plateau, reason)

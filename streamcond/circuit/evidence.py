@@ -74,6 +74,9 @@ class Evidence:
     plateau_width_max: float | None  # widest band that still counted the real transitions
     samples: int
     duration_s: float
+    #: whether each noise estimate could tell the noise from the signal (DESIGN: "reliable"
+    #: and "reason" of estimate_noise), as (filtered, unfiltered); None: the estimate says not
+    unreliable: tuple[str | None, str | None] = (None, None)
 
     def to_volts(self, value: float) -> float:
         return (value - self.offset) / self.gain * self.volts_per_raw
@@ -127,6 +130,13 @@ def from_recording(config_path: str, recording: str, channel: str, configured: b
         low, high, src = s.center - s.width / 2.0, s.center + s.width / 2.0, "suggested"
     v = data.v if data.good is None else data.v[data.good]
     raw_est = estimate_noise(v, data.fs)
+    filt_est = estimate_noise(data.yg, data.fs) if hasattr(data, "yg") else None
+
+    def why(est: Any) -> str | None:
+        if est is None or getattr(est, "reliable", True):
+            return None
+        return str(getattr(est, "reason", None) or "the estimate is marked unreliable")
+
     params = ch.filter.model_dump()
     kind = params.pop("kind")
     return Evidence(
@@ -149,4 +159,5 @@ def from_recording(config_path: str, recording: str, channel: str, configured: b
         plateau_width_max=None if res.plateau is None else float(res.plateau.width_max),
         samples=res.samples,
         duration_s=res.duration_s,
+        unreliable=(why(filt_est), why(raw_est)),
     )

@@ -86,6 +86,8 @@ def verdict(d: Design) -> str:
                 f"the band's centre — the tolerances move the band by more than its half-width; "
                 f"the largest share is {what}: {_CURES[dom]}."
             )
+    if m.unreliable:
+        s += f" Read σ̂ with care: {m.unreliable.rstrip('.')}."
     if m.too_wide and m.plateau_width is not None:
         s += (
             f" At the other extreme the hysteresis ({mv_text(d.spread.hysteresis[1])}) is wider "
@@ -170,7 +172,8 @@ def to_json(d: Design) -> dict[str, Any]:
             "zero_upcrossing_rate_unfiltered_hz": ev.nu0_unfiltered_hz,
         }
         out["noise"] = {"sigma_volts": m.sigma, "nu0_hz": m.nu0_hz,
-                        "measured": "after the prefilter" if m.filtered else "before the prefilter"}
+                        "measured": "after the prefilter" if m.filtered else "before the prefilter",
+                        "reliable": m.unreliable is None, "reason": m.unreliable}
         out["margin_distance_volts"] = m.distance
         out["target_rate_per_hour"] = m.target_rate_per_hour
         out["holds"] = m.holds
