@@ -133,3 +133,20 @@ def test_record_loop_port_appends_and_says_when_nothing_came(tmp_path):
     r = _cli("record", "-c", str(cfg), "-o", str(tmp_path / "c.parquet"), "--duration", "0.5",
              "--append")
     assert r.returncode == 2 and "text captures only" in r.stderr
+
+
+def test_tune_reads_parquet_as_it_reads_the_text(tmp_path):
+    from streamcond.convert import convert
+    from streamcond.tune import pick_channel, read_channel
+
+    cfg = load_config(CFG)
+    pq = tmp_path / "demo.parquet"
+    convert(cfg, DEMO, pq)
+    for ch in cfg.channel:
+        a = read_channel(cfg, DEMO, pick_channel(cfg, ch.name))
+        b = read_channel(cfg, pq, pick_channel(cfg, ch.name))
+        for k, v in vars(a).items():
+            if isinstance(v, np.ndarray):
+                np.testing.assert_array_equal(v, getattr(b, k), err_msg=k)
+            else:
+                assert v == getattr(b, k), k

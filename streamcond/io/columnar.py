@@ -31,7 +31,7 @@ META_KEY = b"streamcond"
 CAPTURE = b"capture v1"
 DATA = b"data v1"
 META_BAD = b"streamcond.bad_lines"
-BATCH_ROWS = 1 << 16
+BATCH_ROWS = 1 << 17  # 128 Ki rows: about the rows of one 4 MiB text block
 
 
 def _pyarrow():
