@@ -94,9 +94,11 @@ def build_parser() -> argparse.ArgumentParser:
     # subcommand's default never overwrites what was given before the command
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("-v", "--verbose", dest="verbose_sub", action="count",
-                        default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+                        default=argparse.SUPPRESS,
+                        help="more log detail on stderr (-vv for debug); also before the command")
     common.add_argument("-q", "--quiet", dest="quiet_sub", action="count",
-                        default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+                        default=argparse.SUPPRESS,
+                        help="only errors on stderr (replay: no closing summary line)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", title="commands")
 
     def cmd(name: str, help_: str, desc: str) -> argparse.ArgumentParser:

@@ -186,7 +186,10 @@ def run_replay(
                 emit(pipe.flush())
             except Exception as e:  # stopped mid-block: the closing record matters more
                 log.debug("no partial windows after the interrupt: %s", e)
-        emit([records.interrupted(t_stop)])
+        stop = records.interrupted(t_stop)
+        if pipe is not None and pipe.host_col is not None:
+            records.with_utc(stop, pipe.last_host_t)
+        emit([stop])
         raise ReplayInterrupted(t_stop, res.rows) from None
     if pipe is None:
         if parser.columns is None:
