@@ -148,6 +148,11 @@ def test_unwritable_path_fails_before_any_work(work):
     assert r.returncode == 2 and "is a directory" in r.stderr
 
 
+def test_dev_null_needs_no_force(work):
+    r = _replay(work, "--events", "/dev/null")
+    assert r.returncode == 0, r.stderr
+
+
 def test_stdout_still_works(work):
     r = _replay(work, "--events", "-")
     assert r.returncode == 0

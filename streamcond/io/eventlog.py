@@ -65,6 +65,8 @@ def check_output(
         )
     if p.is_dir():
         raise InputError(f"The {what} {target!r} is a directory")
+    if p.exists() and not p.is_file():
+        return p  # /dev/null, a FIFO, a terminal: nothing there to lose
     if p.exists() and mode == "new":
         raise InputError(f"The {what} {target!r} already exists; use {force_hint}")
     if p.exists() and not os.access(p, os.W_OK):
@@ -113,6 +115,9 @@ class EventLog:
         p = check_output(target, mode=mode, inputs=inputs)
         self._created = not p.exists()
         self.path = p
+        if p.exists() and not p.is_file():
+            mode = "append"  # a device or a pipe: written as it is, never rotated
+            self.max_bytes = self.max_age_s = None
         self._open("a" if mode == "append" else ("x" if mode == "new" else "w"))
 
     def _open(self, how: str) -> None:
@@ -125,7 +130,10 @@ class EventLog:
             raise InputError(
                 f"The events file {str(self.path)!r} cannot be written: {e.strerror}"
             ) from None
-        self.size = self.fh.seek(0, os.SEEK_END)
+        try:
+            self.size = self.fh.seek(0, os.SEEK_END)
+        except (OSError, ValueError):  # a pipe or a terminal has no size
+            self.size = 0
         self.opened = self.clock()
 
     @property
