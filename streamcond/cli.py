@@ -371,8 +371,7 @@ def _replay(args: argparse.Namespace) -> int:
     if not args.quiet:
         print(summary_line(res.summary), file=sys.stderr)
         if writer.path is not None:  # say what was written where
-            how = {"new": "a new file", "replace": "replaced", "append": "appended"}[mode]
-            print(f"{writer.written:,} records written to {target} ({how}"
+            print(f"{writer.written:,} records written to {target} ({writer.how}"
                   + (f", {writer.rotations} rotation(s)" if writer.rotations else "") + ").",
                   file=sys.stderr)
     if expected is None:

@@ -102,6 +102,7 @@ class EventLog:
         self.keep = max(int(keep), 1)
         self.clock = clock
         self.path: Path | None = None
+        self.how = ""
         self.size = 0
         self.fh: TextIO | None = None
         self._created = False
@@ -115,9 +116,12 @@ class EventLog:
         p = check_output(target, mode=mode, inputs=inputs)
         self._created = not p.exists()
         self.path = p
+        #: what happened to the path, for the user: a new file, replaced, appended, a device
+        self.how = "a new file" if self._created else {"replace": "replaced", "append": "appended"}.get(mode, "")
         if p.exists() and not p.is_file():
             mode = "append"  # a device or a pipe: written as it is, never rotated
             self.max_bytes = self.max_age_s = None
+            self.how = "not a regular file"
         self._open("a" if mode == "append" else ("x" if mode == "new" else "w"))
 
     def _open(self, how: str) -> None:
