@@ -35,6 +35,7 @@ examples:
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl   # add --update-golden to renew it
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
+  streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
 
 exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input,
@@ -124,6 +125,23 @@ def build_parser() -> argparse.ArgumentParser:
     rec.add_argument("-o", "--output", required=True, metavar="CAPTURE", help="capture file to write")
     rec.add_argument("--duration", type=_positive_float, metavar="S",
                      help="stop after S seconds (default: until SIGINT/SIGTERM)")
+    rec_mode = rec.add_mutually_exclusive_group()
+    rec_mode.add_argument("--force", action="store_true",
+                          help="replace CAPTURE if it exists (default: refuse)")
+    rec_mode.add_argument("--append", action="store_true",
+                          help="add to an existing text capture instead of refusing")
+
+    cv = cmd(
+        "convert",
+        "turn a CSV/kv/JSON recording or a capture into Parquet",
+        "Read a recording through the same parser as replay and write the rows it keeps as\n"
+        "Parquet (a column per source column, compressed row groups); replay, tune and compare\n"
+        "read it back and give the same records. Needs pyarrow (streamcond[parquet]).",
+    )
+    cv.add_argument("recording", metavar="RECORDING", help="recorded stream or capture")
+    cv.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    cv.add_argument("-o", "--output", required=True, metavar="PARQUET", help="Parquet file to write")
+    cv.add_argument("--force", action="store_true", help="replace PARQUET if it exists")
 
     r = cmd(
         "replay",
@@ -214,6 +232,11 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     c.add_argument("--json", action="store_true", help="print the resolved settings as JSON")
 
+    from .circuit.cli import DESCRIPTION as CIRCUIT_DESCRIPTION, HELP as CIRCUIT_HELP
+    from .circuit.cli import add_arguments as circuit_arguments
+
+    circuit_arguments(cmd("circuit", CIRCUIT_HELP, CIRCUIT_DESCRIPTION))
+
     b = cmd(
         "bench",
         "measure throughput on this machine",
@@ -271,12 +294,20 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .record import main as record_main
 
             return record_main(args)
+        if args.command == "convert":
+            from .convert import main as convert_main
+
+            return convert_main(args)
         if args.command == "check":
             return _check(args)
         if args.command == "tune":
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "circuit":
+            from .circuit.cli import main as circuit_main
+
+            return circuit_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 

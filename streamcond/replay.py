@@ -58,20 +58,33 @@ def check_columns(cfg: Config, columns: list[str]) -> None:
 
 
 def open_recording(
-    cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES
+    cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES,
+    reader: str | None = None,
 ) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool]:
-    """The parser and the block iterator for a recording or a capture, and whether the rows
-    carry host receive times as their sample time (a capture read with a config that has no
-    time column and no fixed rate)."""
-    parser = make_parser(cfg)
+    """The parser and the block iterator for a recording or a capture (text, Parquet or Arrow
+    IPC), and whether the rows carry host receive times as their sample time (a capture read
+    with a config that has no time column and no fixed rate). ``reader`` picks the CSV block
+    reader (``numpy`` or ``pyarrow``; default: the fastest installed)."""
+    from .io.recording import kind_of
+
     src = cfg.source
-    capture = is_capture(recording)
+    parser = LineParser(src.format, columns=src.columns, needed=needed_columns(cfg),
+                        max_line_bytes=src.max_line_bytes, reader=reader)
+    kind = kind_of(recording)
+    if kind != "text":
+        from .io.columnar import has_host_time, is_columnar_capture, read_columnar_blocks
+
+        capture = is_columnar_capture(recording, kind) or has_host_time(recording, kind)
+    else:
+        capture = is_capture(recording)
     if src.host_time and not capture:
         raise InputError(
             f"The recording {str(recording)!r} carries no sample time: set source.time_column "
             "or source.sample_rate_hz, or use a capture made by `streamcond record`"
         )
     host_time = capture and src.host_time
+    if kind != "text":
+        return parser, read_columnar_blocks(recording, parser, kind, host_time), host_time
     if capture:
         # the rows always carry the recorded host time (a last column): the sample time when
         # the data has none, and the wall-clock stamp (``utc``) of the records either way
