@@ -140,7 +140,9 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
-    with_host_column = is_capture(recording)  # see open_recording
+    # rows with the host receive time as a last column: a text capture always (see
+    # open_recording), any other capture when that time is the sample time
+    with_host_column = host_time or is_capture(recording)
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)
