@@ -141,7 +141,9 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
-    with_host_column = is_capture(recording)  # see open_recording
+    # rows with the host receive time as a last column: a text capture always (see
+    # open_recording), any other capture when that time is the sample time
+    with_host_column = host_time or is_capture(recording)
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)
@@ -200,7 +202,10 @@ def run_replay(
                 emit(pipe.flush())
             except Exception as e:  # stopped mid-block: the closing record matters more
                 log.debug("no partial windows after the interrupt: %s", e)
-        emit([records.interrupted(t_stop)])
+        stop = records.interrupted(t_stop)
+        if pipe is not None and pipe.host_col is not None:
+            records.with_utc(stop, pipe.last_host_t)
+        emit([stop])
         raise ReplayInterrupted(t_stop, res.rows) from None
     if pipe is None:
         if parser.columns is None:
