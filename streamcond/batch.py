@@ -14,6 +14,7 @@ import concurrent.futures as cf
 import glob
 import logging
 import os
+import socket
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -94,6 +95,7 @@ def open_executor(jobs: int | None = None, scheduler: str | None = None) -> Iter
                 "--scheduler needs dask.distributed, which is not installed: "
                 "pip install 'streamcond[cluster]'"
             ) from None
+        _probe_scheduler(scheduler)
         try:
             client = Client(scheduler, timeout="10s", set_as_default=False)
         except Exception as e:  # OSError, TimeoutError, ValueError for a malformed address
@@ -104,11 +106,45 @@ def open_executor(jobs: int | None = None, scheduler: str | None = None) -> Iter
         finally:
             client.close()
         return
+    # import the pipeline (numpy, scipy.signal) here, once: forked workers inherit it
+    from . import replay  # noqa: F401
+    from .core import pipeline  # noqa: F401
+
     pool = cf.ProcessPoolExecutor(max_workers=jobs or os.cpu_count() or 1)
     try:
         yield pool
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+#: The protocols of dask.distributed's network communication a remote scheduler can speak.
+_SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
+
+
+def _probe_scheduler(address: str) -> None:
+    """Check the address, and that a TCP scheduler accepts connections, before making a
+    client: a client that fails to connect leaves a half-made object whose clean-up waits and
+    prints a traceback at exit."""
+    from distributed.comm import parse_address, parse_host_port
+
+    try:
+        scheme, loc = parse_address(address, strict=True)
+    except (ValueError, TypeError) as e:
+        raise InputError(f"The scheduler address {address!r} cannot be used: {e} "
+                         "(e.g. tcp://10.0.0.5:8786)") from None
+    if scheme not in _SCHEMES:
+        raise InputError(f"The scheduler address {address!r} cannot be used: the protocol must "
+                         f"be one of {', '.join(_SCHEMES)} (e.g. tcp://10.0.0.5:8786)")
+    if scheme not in ("tcp", "tls"):
+        return
+    try:
+        host, port = parse_host_port(loc)
+    except (ValueError, TypeError) as e:
+        raise InputError(f"The scheduler address {address!r} cannot be used: {e}") from None
+    try:
+        socket.create_connection((host, port), timeout=10).close()
+    except OSError as e:
+        raise InputError(f"The scheduler {address!r} cannot be reached: {e.strerror or e}") from None
 
 
 @dataclass
