@@ -290,6 +290,7 @@ def compare_recording(
             "moved": len(d.moved) if d else 0,
             "missing": len(d.missing) if d else 0,
             "added": len(d.unexpected) if d else 0,
+            "max_moved_s": round(max((abs(y.t - x.t) for x, y in d.moved), default=0.0), 9) if d else 0.0,
             "raw_crossings_a": ta.raw_crossings.get(ch, 0),
             "raw_crossings_b": tb.raw_crossings.get(ch, 0),
             "suppression_a": ta.suppression(ch),

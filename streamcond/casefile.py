@@ -18,6 +18,7 @@ The pytest plugin (:mod:`streamcond.pytest_plugin`) turns each case file into a 
 from __future__ import annotations
 
 import math
+import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -77,7 +78,7 @@ def load_case(path: str | Path) -> Case:
         elif not isinstance(v, str) or not v:
             problems.append(f"{key} must be a path (a string)")
         else:
-            paths[key] = p.parent / v
+            paths[key] = Path(os.path.normpath(p.parent / v))
     tol = data.get("tolerance", DEFAULT_TOLERANCE)
     if isinstance(tol, bool) or not isinstance(tol, (int, float)) or not math.isfinite(tol) or tol < 0:
         problems.append("tolerance must be 0 or a positive number of seconds")

@@ -184,8 +184,9 @@ def build_parser() -> argparse.ArgumentParser:
         "which events would change on many recordings with another config",
         "Replay every recording with CONFIG_A and with CONFIG_B and report, per recording and\n"
         "channel, the edges with each, the edges that moved beyond the tolerance, went missing\n"
-        "or were added (A is the reference), and the chatter with each config (raw crossings of\n"
-        "the band centre, and their ratio to the edges). One task per recording, in local\n"
+        "or were added (A is the reference; the largest move in seconds), and the chatter with\n"
+        "each config (raw crossings of the band centre, and their ratio to the edges; over the\n"
+        "stats windows). One task per recording, in local\n"
         "processes (--jobs) or on a Dask cluster (--scheduler).\n\n"
         "exit codes: 0 nothing changed beyond --threshold, 1 something did, 2 bad input.",
     )

@@ -29,7 +29,7 @@ EXIT_OK, EXIT_DIFFERENT, EXIT_USAGE = 0, 1, 2
 
 #: Columns of the table, the CSV and the per-channel JSON objects.
 FIELDS = (
-    "edges_a", "edges_b", "moved", "missing", "added",
+    "edges_a", "edges_b", "moved", "missing", "added", "max_moved_s",
     "raw_crossings_a", "raw_crossings_b", "suppression_a", "suppression_b",
 )
 
@@ -180,9 +180,11 @@ def to_json(outcomes: Sequence[Outcome], threshold: Threshold) -> dict[str, Any]
     return doc
 
 
-def _fmt(v: Any) -> str:
+def _fmt(v: Any, key: str = "") -> str:
     if v is None:
         return "-"
+    if key == "max_moved_s":
+        return f"{v:.3f}" if v else "-"
     if isinstance(v, float):
         return f"{v:.2f}"
     return f"{v:,}"
@@ -190,11 +192,11 @@ def _fmt(v: Any) -> str:
 
 def format_table(doc: dict[str, Any]) -> str:
     head = ("recording", "channel", "edges A", "edges B", "moved", "missing", "added",
-            "raw A", "raw B", "supp A", "supp B", "status")
+            "max move s", "raw A", "raw B", "supp A", "supp B", "status")
     rows = []
     for r in doc["recordings"]:
         for name, ch in r["channels"].items():
-            rows.append((r["recording"], name, *(_fmt(ch[k]) for k in FIELDS),
+            rows.append((r["recording"], name, *(_fmt(ch[k], k) for k in FIELDS),
                          "changed" if ch["changed"] else ""))
     widths = [max(len(str(x)) for x in col) for col in zip(head, *rows)] if rows else [len(h) for h in head]
     out = io.StringIO()

@@ -103,7 +103,8 @@ class CaseItem(pytest.Item):
                 "golden file; pinned [summary] figures are edited in the case file)"
             )
             raise CaseDiffers(
-                f"replay of {case.recording} with {case.config} differs from {case.golden}:",
+                f"replay of {_show(case.recording)} with {_show(case.config)} differs from "
+                f"{_show(case.golden)}:",
                 lines + [hint],
             )
 
@@ -118,6 +119,12 @@ class CaseItem(pytest.Item):
 
     def reportinfo(self) -> tuple[Path, int | None, str]:
         return self.path, None, f"streamcond case {self.name}"
+
+
+def _show(path: Path) -> str:
+    """A path as short as it reads well: relative to the current folder when below it."""
+    rel = os.path.relpath(path)
+    return str(path) if rel.startswith("..") else rel
 
 
 def pytest_configure(config: pytest.Config) -> None:

@@ -117,11 +117,13 @@ def expected_channels(periods: int, tolerance: float) -> dict:
     moved = 2 * periods if tolerance < 0.05 else 0  # every tri edge moves by 0.05 s
     return {
         "tri": {"edges_a": 2 * periods, "edges_b": 2 * periods, "moved": moved, "missing": 0,
-                "added": 0, "raw_crossings_a": 2 * periods, "raw_crossings_b": 2 * periods,
+                "added": 0, "max_moved_s": 0.05 if moved else 0.0,
+                "raw_crossings_a": 2 * periods, "raw_crossings_b": 2 * periods,
                 "suppression_a": 1.0, "suppression_b": 1.0},
         "pulse": {"edges_a": 4 * periods, "edges_b": 2 * periods, "moved": 0,
-                  "missing": 2 * periods, "added": 0, "raw_crossings_a": 4 * periods,
-                  "raw_crossings_b": 4 * periods, "suppression_a": 1.0, "suppression_b": 2.0},
+                  "missing": 2 * periods, "added": 0, "max_moved_s": 0.0,
+                  "raw_crossings_a": 4 * periods, "raw_crossings_b": 4 * periods,
+                  "suppression_a": 1.0, "suppression_b": 2.0},
     }
 
 
@@ -178,7 +180,7 @@ def test_table_csv_and_list_file(cli, fleet, tmp_path):
     assert code == 1, err
     lines = out.splitlines()
     assert lines[0].split()[:7] == ["recording", "channel", "edges", "A", "edges", "B", "moved"]
-    assert re.search(r"month/st2.csv\s+pulse\s+20\s+10\s+0\s+10\s+0\s+20\s+20\s+1.00\s+2.00\s+changed",
+    assert re.search(r"month/st2.csv\s+pulse\s+20\s+10\s+0\s+10\s+0\s+-\s+20\s+20\s+1.00\s+2.00\s+changed",
                      out)
     assert lines[-1] == ("2 recording(s) compared: 4 channel(s) in 2 recording(s) changed beyond "
                          "the threshold (any change).")
@@ -268,7 +270,7 @@ def cluster():
     from dask.distributed import LocalCluster
 
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, protocol="tcp") as c:
+                      dashboard_address="127.0.0.1:0", protocol="tcp") as c:
         assert c.scheduler_address.startswith("tcp://127.0.0.1:")
         yield c
 
