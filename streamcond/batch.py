@@ -32,7 +32,9 @@ _GLOB_CHARS = set("*?[")
 
 def is_many(args: Sequence[str]) -> bool:
     """Whether the RECORDING arguments name several recordings (or may: a glob, a list file)."""
-    return len(args) > 1 or any(a.startswith("@") or _GLOB_CHARS & set(a) for a in args)
+    return len(args) > 1 or any(
+        a.startswith("@") or (_GLOB_CHARS & set(a) and not os.path.isfile(a)) for a in args
+    )
 
 
 def expand_recordings(args: Sequence[str]) -> list[str]:

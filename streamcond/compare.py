@@ -112,10 +112,11 @@ def _check_executor_args(args: argparse.Namespace) -> None:
         )
 
 
-def _progress(recordings: Sequence[str], passes: int, disabled: bool) -> Any:
+def _progress(recordings: Sequence[str], disabled: bool) -> Any:
+    """The progress line, advanced by each finished recording's size."""
     from .progress import Progress
 
-    total = sum(os.path.getsize(r) for r in recordings) * passes
+    total = sum(os.path.getsize(r) for r in recordings)
     return Progress(total, enabled=False if disabled else None)
 
 
@@ -237,7 +238,7 @@ def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
     _check_executor_args(args)
     recordings = expand_recordings(args.recordings)
     csv_fh = _open_csv(args.csv, [args.config_a, args.config_b, *recordings], args.force) if args.csv else None
-    progress = _progress(recordings, 2, args.no_progress)
+    progress = _progress(recordings, args.no_progress)
     try:
         outcomes = run(args.config_a, args.config_b, recordings, tolerance=args.tolerance,
                        jobs=args.jobs, scheduler=args.scheduler, progress=progress)
@@ -283,7 +284,7 @@ def replay_many(args: argparse.Namespace, out: TextIO | None = None) -> int:
     _check_executor_args(args)
     cfg = load_config(args.config)
     recordings = expand_recordings(args.recording)
-    progress = _progress(recordings, 1, args.no_progress)
+    progress = _progress(recordings, args.no_progress)
     try:
         with open_executor(args.jobs, args.scheduler) as ex:
             outcomes = run_tasks(ex, replay_summary, recordings, cfg, args.chunk, progress=progress)

@@ -66,6 +66,7 @@ class CaseItem(pytest.Item):
         from .batch import Tally
         from .casefile import check_summary, load_case
         from .config import load_config
+        from .errors import InputError
         from .golden import compare, load_edges
         from .replay import JsonlWriter, run_replay
 
@@ -73,7 +74,10 @@ class CaseItem(pytest.Item):
         cfg = load_config(case.config)
         update = self.config.getoption("streamcond_update_golden")
         tally = Tally()  # the edges only: memory does not grow with the recording
-        expected = load_edges(case.golden) if not update or case.golden.exists() else []
+        if not update and not case.golden.exists():
+            raise InputError(f"The golden file {_show(case.golden)!r} does not exist; "
+                             f"`pytest {UPDATE_OPTION}` writes it from the replay (review it)")
+        expected = load_edges(case.golden) if case.golden.exists() else []
         if update:
             tmp = case.golden.with_name(case.golden.name + f".{os.getpid()}.tmp")
             writer = JsonlWriter(str(tmp))

@@ -347,3 +347,24 @@ def test_linear_time_pairing_agrees_with_the_plain_rule():
                 for d in diff_edges(exp, got, tol)]
         assert mine == _pair_reference(exp, got, tol)
         assert bool(golden_compare(exp, got, tol)) == any(m[1] or m[2] or m[3] for m in mine)
+
+
+def test_progress_reaches_the_end_and_odd_file_names(fleet, tmp_path):
+    import io
+
+    from streamcond.batch import compare_recording, is_many, open_executor, run_tasks
+    from streamcond.config import load_config
+    from streamcond.progress import Progress
+
+    odd = tmp_path / "st[1].csv"  # a real file whose name looks like a glob is one recording
+    odd.write_bytes((fleet / "month" / "st2.csv").read_bytes())
+    assert not is_many([str(odd)]) and is_many([str(tmp_path / "st*.csv")]) and is_many(["@x"])
+    recs = [str(fleet / "month" / "st1.csv"), str(odd)]
+    stream = io.StringIO()
+    progress = Progress(sum(os.path.getsize(r) for r in recs), stream=stream, enabled=True,
+                        min_interval_s=0.0)
+    a, b = load_config(fleet / "a.toml"), load_config(fleet / "b.toml")
+    with open_executor(jobs=2) as ex:
+        out = run_tasks(ex, compare_recording, recs, a, b, 0.01, progress=progress)
+    assert [o.recording for o in out] == recs and not any(o.errors for o in out)
+    assert stream.getvalue().rstrip().split("\r")[-1].startswith("[" + "#" * 30 + "] 100.0%")

@@ -97,10 +97,14 @@ def test_broken_golden_shows_the_readable_diff_and_is_not_rewritten(tmp_path):
 def test_update_option_rewrites_the_golden(tmp_path):
     broken_golden(tmp_path / "golden.jsonl")
     write_case(tmp_path, "broken", "golden.jsonl")
-    r = pytest_run(tmp_path, ".", f"--streamcond-update-golden")
+    write_case(tmp_path, "fresh", "new/fresh.jsonl")  # no golden yet
+    (tmp_path / "new").mkdir()
+    r = pytest_run(tmp_path, ".", "--streamcond-update-golden")
     assert r.returncode == 0, r.stdout + r.stderr
     assert "golden files rewritten" in r.stdout and "golden.jsonl (3553 edges)" in r.stdout
+    assert "fresh.jsonl (3553 edges)" in r.stdout
     assert load_edges(tmp_path / "golden.jsonl") == load_edges(GOLDEN)
+    assert load_edges(tmp_path / "new" / "fresh.jsonl") == load_edges(GOLDEN)
     assert not list(tmp_path.glob("*.tmp"))
     r = pytest_run(tmp_path, ".")
     assert r.returncode == 0, r.stdout + r.stderr
@@ -112,9 +116,11 @@ def test_pinned_summary_figures_and_broken_case_files(tmp_path):
                summary="{ edges = { flow = 3534, pump = 10 }, bad_lines = 0 }")
     (tmp_path / "incomplete.case.toml").write_text('recording = "x.csv"\ntolerence = 0.1\n')
     (tmp_path / "garbled.case.toml").write_text("recording = \n")
+    write_case(tmp_path, "unwritten", "nowhere.jsonl")
     r = pytest_run(tmp_path, ".", "-q")
     out = r.stdout
-    assert r.returncode == 1 and "3 failed" in out, out + r.stderr
+    assert r.returncode == 1 and "4 failed" in out, out + r.stderr
+    assert "nowhere.jsonl' does not exist; `pytest --streamcond-update-golden` writes it" in out
     assert "summary: channel flow: 3534 edges expected, 3533 produced" in out
     assert "tolerence is not a known key of a case file" in out
     assert "config is required" in out and "golden is required" in out
