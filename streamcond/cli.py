@@ -185,9 +185,9 @@ def build_parser() -> argparse.ArgumentParser:
         "Replay every recording with CONFIG_A and with CONFIG_B and report, per recording and\n"
         "channel, the edges with each, the edges that moved beyond the tolerance, went missing\n"
         "or were added (A is the reference; the largest move in seconds), and the chatter with\n"
-        "each config (raw crossings of the band centre, and their ratio to the edges; over the\n"
-        "stats windows). One task per recording, in local\n"
-        "processes (--jobs) or on a Dask cluster (--scheduler).\n\n"
+        "each config (raw crossings of the band centre, and their ratio to the edges, over the\n"
+        "stats windows). One task per recording, in local processes (--jobs) or on a Dask\n"
+        "cluster (--scheduler).\n\n"
         "exit codes: 0 nothing changed beyond --threshold, 1 something did, 2 bad input.",
     )
     from .compare import add_arguments as add_compare_arguments
@@ -291,12 +291,11 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _replay(args: argparse.Namespace) -> int:
     from .config import load_config
     from .golden import compare, edges_of, load_edges
+    from .batch import is_many
     from .progress import Progress
     from .replay import JsonlWriter, run_replay
 
-    from .batch import is_many
-
-    if is_many(args.recording):  # several recordings: one summary line each
+    if is_many(args.recording):  # several recordings: one summary line each (compare.py)
         from .compare import replay_many
 
         return replay_many(args)
