@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import bisect
 import json
+import math
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -27,8 +29,9 @@ class Edge:
     level: int
 
 
-def load_edges(path: str | Path) -> list[Edge]:
-    """Edge records of a JSON-lines events file (other record kinds are ignored)."""
+def load_records(path: str | Path) -> list[dict[str, Any]]:
+    """Every record of a JSON-lines events file; an empty file is an input error (comparing
+    with nothing would report every produced edge as unexpected)."""
     p = Path(path)
     try:
         text = p.read_text(encoding="utf-8")
@@ -36,7 +39,7 @@ def load_edges(path: str | Path) -> list[Edge]:
         raise InputError(f"The golden file {str(p)!r} does not exist") from None
     except (OSError, UnicodeDecodeError) as e:
         raise InputError(f"The golden file {str(p)!r} cannot be read: {e}") from None
-    out: list[Edge] = []
+    out: list[dict[str, Any]] = []
     for no, line in enumerate(text.splitlines(), 1):
         if not line.strip():
             continue
@@ -44,12 +47,24 @@ def load_edges(path: str | Path) -> list[Edge]:
             rec = json.loads(line)
         except json.JSONDecodeError:
             raise InputError(f"{str(p)!r} line {no} is not JSON") from None
-        if isinstance(rec, dict) and rec.get("kind") == "edge":
+        if not isinstance(rec, dict):
+            raise InputError(f"{str(p)!r} line {no} is not a record (a JSON object)")
+        if rec.get("kind") == "edge":
             try:
-                out.append(Edge(str(rec["channel"]), float(rec["t"]), int(rec["level"])))
+                str(rec["channel"]), float(rec["t"]), int(rec["level"])
             except (KeyError, TypeError, ValueError):
                 raise InputError(f"{str(p)!r} line {no} is an edge without channel, t or level") from None
+        out.append(rec)
+    if not out:
+        raise InputError(
+            f"The golden file {str(p)!r} is empty; make one with --update-golden"
+        )
     return out
+
+
+def load_edges(path: str | Path) -> list[Edge]:
+    """Edge records of a JSON-lines events file (other record kinds are ignored)."""
+    return edges_of(load_records(path))
 
 
 def edges_of(records: Iterable[dict[str, Any]]) -> list[Edge]:
@@ -185,3 +200,90 @@ def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str
 
 def _word(level: int) -> str:
     return "rising " if level else "falling"
+
+
+# -- the other records (``--compare-all``) -------------------------------------------------------
+
+
+def _faults_and_gaps(recs: Iterable[dict[str, Any]]) -> list[tuple[str, str, float, float | None]]:
+    out = []
+    for r in recs:
+        k = r.get("kind")
+        if k == "fault":
+            label = f"fault {r.get('channel') or '(source)'} {r.get('state') or r.get('reason', '')}"
+            out.append((label.strip(), "fault", _f(r.get("t")), None))
+        elif k == "gap":
+            out.append((f"gap {r.get('reason', '')}", "gap", _f(r.get("t")), _f(r.get("t_end"))))
+    return out
+
+
+def _f(x: Any) -> float:
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return float("nan")
+
+
+def _close(a: float, b: float, tol: float) -> bool:
+    return (a != a and b != b) or abs(a - b) <= tol
+
+
+def _totals(recs: Iterable[dict[str, Any]]) -> dict[str, Any] | None:
+    for r in recs:
+        if r.get("kind") == "summary":
+            return r.get("totals") or {ch: {"edges": n} for ch, n in (r.get("edges") or {}).items()}
+    return None
+
+
+def compare_other(
+    expected: list[dict[str, Any]], got: list[dict[str, Any]], tolerance: float
+) -> list[str]:
+    """Faults and gaps (label, time and end within ``tolerance``, in order) and the summary's
+    final totals per channel (exactly; ``total_units`` to 1e-9 relative)."""
+    lines: list[str] = []
+    a, b = _faults_and_gaps(expected), _faults_and_gaps(got)
+    for i in range(max(len(a), len(b))):
+        x = a[i] if i < len(a) else None
+        y = b[i] if i < len(b) else None
+        if x is None:
+            lines.append(f"  + {y[0]} at t={y[2]:.6f} unexpected")  # type: ignore[index]
+        elif y is None:
+            lines.append(f"  - {x[0]} at t={x[2]:.6f} missing")
+        elif x[0] != y[0] or not _close(x[2], y[2], tolerance) or not _close(
+            _f(x[3]), _f(y[3]), tolerance
+        ):
+            lines.append(f"  ~ {x[0]} at t={x[2]:.6f} is now {y[0]} at t={y[2]:.6f}")
+    if lines:
+        lines.insert(0, f"faults and gaps: {len(a)} expected, {len(b)} produced")
+    ta, tb = _totals(expected), _totals(got)
+    if ta is not None and tb is not None:
+        for ch in dict.fromkeys(list(ta) + list(tb)):
+            x, y = ta.get(ch), tb.get(ch)
+            if x == y:
+                continue
+            if isinstance(x, dict) and isinstance(y, dict) and set(x) == set(y) and all(
+                x[k] == y[k] or (isinstance(x[k], float) and isinstance(y[k], (int, float))
+                                 and math.isclose(x[k], y[k], rel_tol=1e-9))
+                for k in x
+            ):
+                continue
+            lines.append(f"totals of channel {ch}: expected {x}, produced {y}")
+    elif ta is not None:
+        lines.append("totals: the golden file has a summary, the replay none")
+    return lines
+
+
+def write_golden(path: str | Path, recs: Iterable[dict[str, Any]]) -> None:
+    """Write a golden file (``--update-golden``): to a temporary file beside it, then renamed
+    over it, so an interrupted update leaves the old file whole."""
+    from .records import to_json
+
+    p = Path(path)
+    tmp = p.with_name(p.name + ".tmp")
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            for r in recs:
+                fh.write(to_json(r) + "\n")
+        os.replace(tmp, p)
+    except OSError as e:
+        raise InputError(f"The golden file {str(p)!r} cannot be written: {e.strerror}") from None

@@ -68,7 +68,8 @@ class CaseItem(pytest.Item):
         from .config import load_config
         from .errors import InputError
         from .golden import compare, load_edges
-        from .replay import JsonlWriter, run_replay
+        from .io.eventlog import EventLog
+        from .replay import run_replay
 
         case = load_case(self.path)
         cfg = load_config(case.config)
@@ -80,7 +81,8 @@ class CaseItem(pytest.Item):
         expected = load_edges(case.golden) if case.golden.exists() else []
         if update:
             tmp = case.golden.with_name(case.golden.name + f".{os.getpid()}.tmp")
-            writer = JsonlWriter(str(tmp))
+            writer = EventLog(str(tmp), mode="replace",
+                              inputs=[("recording", case.recording), ("config", case.config)])
 
             def sink(rec: dict[str, Any]) -> None:
                 tally(rec)

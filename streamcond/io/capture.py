@@ -38,15 +38,15 @@ def is_capture(path: str | Path) -> bool:
 class CaptureWriter:
     """Appends received lines with their host times to a capture file."""
 
-    def __init__(self, path: str | Path) -> None:
+    def __init__(self, path: str | Path, append: bool = False) -> None:
         p = Path(path)
+        fresh = not (append and p.exists() and p.stat().st_size)
         try:
-            if p.parent and not p.parent.exists():
-                p.parent.mkdir(parents=True, exist_ok=True)
-            self.fh: BinaryIO = open(p, "wb")
+            self.fh: BinaryIO = open(p, "ab" if append else "wb")
         except OSError as e:
             raise InputError(f"The capture file {str(p)!r} cannot be written: {e.strerror}") from None
-        self.fh.write(MAGIC + b"\n")
+        if fresh:
+            self.fh.write(MAGIC + b"\n")
         self.lines = 0
 
     def write(self, lines: list[bytes], times: np.ndarray) -> None:
@@ -133,4 +133,4 @@ def read_capture_blocks(
                 parser.bad += bad
             return p
 
-    yield from read_blocks(path, _Splitter(), block_bytes)  # type: ignore[arg-type]
+    yield from read_blocks(path, parser, block_bytes, feeder=_Splitter())
