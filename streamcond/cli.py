@@ -262,7 +262,8 @@ def build_parser() -> argparse.ArgumentParser:
         "measure throughput on this machine",
         "Measure, side by side in one run: the hysteresis kernel against a bare numpy comparator\n"
         "and a per-sample Python loop on the same 10 M samples, and the replay of a generated\n"
-        "1 M-row, 4-channel CSV against numpy.loadtxt on the same file.",
+        "1 M-row, 4-channel CSV against numpy.loadtxt on the same file, and, when installed,\n"
+        "against pandas' and pyarrow's CSV readers and of a Parquet copy against reading it.",
     )
     b.add_argument("--json", action="store_true", help="machine-readable output")
     b.add_argument(
