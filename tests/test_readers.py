@@ -191,3 +191,17 @@ def test_record_to_parquet_replays_like_a_text_capture(tmp_path):
 
     assert strip(a.records) == strip(b.records) and len(strip(a.records)) >= 10
     assert all("utc" in r for r in b.records if r["kind"] == "edge")
+
+
+def test_compare_reads_parquet_as_it_reads_the_text(tmp_path):
+    import json
+
+    from streamcond.convert import convert
+
+    pq = tmp_path / "demo.parquet"
+    convert(load_config(CFG), DEMO, pq)
+    r = _cli("compare", str(CFG), str(CFG), str(DEMO), str(pq), "--json", "--jobs", "1")
+    assert r.returncode == 0, r.stderr
+    recs = json.loads(r.stdout)["recordings"]
+    assert len(recs) == 2 and recs[0]["channels"] == recs[1]["channels"]
+    assert recs[0]["channels"]["flow"]["edges_a"] == 3533  # the demo summary: flow 3,533 edges
