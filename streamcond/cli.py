@@ -37,8 +37,9 @@ examples:
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
   streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
+  streamcond compare config/site.toml new-band.toml 'recordings/*.csv' --jobs 2
 
-exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input,
+exit codes: 0 success, 1 --expect or compare found differences, 2 bad usage, config or input,
 130 interrupted (Ctrl-C)."""
 
 
@@ -149,8 +150,9 @@ def build_parser() -> argparse.ArgumentParser:
         "Run a recording through the same parser and conditioning core as the live daemon and\n"
         "write the records (state, edges, gaps, and a closing summary) as JSON lines.",
     )
-    r.add_argument("recording", metavar="RECORDING", nargs="?",
-                   help="recorded stream (CSV/kv/JSON lines, or a capture); default: source.path")
+    r.add_argument("recording", metavar="RECORDING", nargs="*",
+                   help="recorded stream (CSV/kv/JSON lines, or a capture); default: source.path; "
+                   "several, a glob or @LIST: one summary line each")
     r.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     r.add_argument(
         "--events",
@@ -201,6 +203,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument(
         "--no-progress", action="store_true", help="no progress line, even on a terminal"
     )
+    from .compare import add_executor_arguments
+
+    add_executor_arguments(r, _positive_int)  # for several recordings
 
     t = cmd(
         "tune",
@@ -223,6 +228,21 @@ def build_parser() -> argparse.ArgumentParser:
         help="acceptable false edges per hour from noise alone, by Rice's formula for a signal "
         "resting at the band centre (an upper bound); default 1/24: one a day",
     )
+
+    cmp = cmd(
+        "compare",
+        "which events would change on many recordings with another config",
+        "Replay every recording with CONFIG_A and with CONFIG_B and report, per recording and\n"
+        "channel, the edges with each, the edges that moved beyond the tolerance, went missing\n"
+        "or were added (A is the reference; the largest move in seconds), and the chatter with\n"
+        "each config (raw crossings of the band centre, and their ratio to the edges, over the\n"
+        "stats windows). One task per recording, in local processes (--jobs) or on a Dask\n"
+        "cluster (--scheduler).\n\n"
+        "exit codes: 0 nothing changed beyond --threshold, 1 something did, 2 bad input.",
+    )
+    from .compare import add_arguments as add_compare_arguments
+
+    add_compare_arguments(cmp)
 
     c = cmd(
         "check",
@@ -286,6 +306,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         if args.command == "replay":
             return _replay(args)
+        if args.command == "compare":
+            from .compare import main as compare_main
+
+            return compare_main(args)
         if args.command == "run":
             from .daemon import run
 
@@ -329,6 +353,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _replay(args: argparse.Namespace) -> int:
     from .config import load_config
+    from .batch import is_many
     from .golden import compare, compare_other, edges_of, load_records, write_golden
     from .io.eventlog import EventLog, check_output
     from .progress import Progress
@@ -337,6 +362,11 @@ def _replay(args: argparse.Namespace) -> int:
     if (args.update_golden or args.compare_all) and not args.expect:
         flag = "--update-golden" if args.update_golden else "--compare-all"
         raise InputError(f"{flag} needs --expect GOLDEN")
+    if is_many(args.recording):  # several recordings: one summary line each (compare.py)
+        from .compare import replay_many
+
+        return replay_many(args)
+    args.recording = args.recording[0] if args.recording else None
     cfg = load_config(args.config)
     if args.recording is None:
         if not cfg.source.path:

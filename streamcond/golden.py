@@ -8,10 +8,11 @@ missing and an unexpected edge of the same level close together are shown as one
 
 from __future__ import annotations
 
+import bisect
 import json
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
 
@@ -72,13 +73,35 @@ def edges_of(records: Iterable[dict[str, Any]]) -> list[Edge]:
     ]
 
 
-def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str]:
-    """Readable difference lines; empty when the edges agree."""
-    lines: list[str] = []
+@dataclass
+class ChannelDiff:
+    """How one channel's produced edges differ from the expected ones."""
+
+    channel: str
+    expected: int
+    produced: int
+    moved: list[tuple[Edge, Edge]] = field(default_factory=list)  # (expected, produced)
+    missing: list[Edge] = field(default_factory=list)
+    unexpected: list[Edge] = field(default_factory=list)
+
+    @property
+    def changed(self) -> int:
+        return len(self.moved) + len(self.missing) + len(self.unexpected)
+
+
+def diff_edges(expected: list[Edge], got: list[Edge], tolerance: float) -> list[ChannelDiff]:
+    """Per channel (every channel of either side, in order of appearance): the edges that
+    match within ``tolerance``, and what is left over as moved, missing and unexpected.
+
+    The work is linear in the number of edges (plus sorting), so that comparing long
+    recordings whose every edge moved stays cheap.
+    """
+    out: list[ChannelDiff] = []
     channels = list(dict.fromkeys([e.channel for e in expected] + [e.channel for e in got]))
     for ch in channels:
         a = sorted((e for e in expected if e.channel == ch), key=lambda e: e.t)
         b = sorted((e for e in got if e.channel == ch), key=lambda e: e.t)
+        d = ChannelDiff(ch, len(a), len(b))
         missing: list[Edge] = []
         extra: list[Edge] = []
         i = j = 0
@@ -94,34 +117,77 @@ def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str
                 j += 1
         missing += a[i:]
         extra += b[j:]
-        if not missing and not extra:
+        window = max(1.0, 1000 * tolerance)
+        pairs = _pair_moved(missing, extra, window)
+        d.moved = [(missing[i], extra[k]) for i, k in pairs.items()]
+        d.missing = [m for i, m in enumerate(missing) if i not in pairs]
+        used = set(pairs.values())
+        d.unexpected = [x for k, x in enumerate(extra) if k not in used]
+        out.append(d)
+    return out
+
+
+def _pair_moved(missing: list[Edge], extra: list[Edge], window: float) -> dict[int, int]:
+    """Pair each missing edge, in time order, with the nearest still unpaired unexpected edge of
+    the same level (the earlier one on a tie) when it lies within ``window``: a moved edge.
+
+    ``extra`` is in time order. Paired edges are skipped with a "next free" pointer per
+    direction (path-halving union-find), so each lookup is near constant time.
+    """
+    pairs: dict[int, int] = {}  # index in missing -> index in extra
+    for level in (0, 1):
+        idx = [k for k, x in enumerate(extra) if x.level == level]
+        if not idx:
+            continue
+        ts = [extra[k].t for k in idx]
+        n = len(idx)
+        right = list(range(n + 1))  # right[p]: first free position >= p (n = none)
+        left = list(range(n + 1))  # left[p + 1] - 1: last free position <= p (-1 = none)
+
+        def find(parent: list[int], p: int) -> int:
+            while parent[p] != p:
+                parent[p] = parent[parent[p]]
+                p = parent[p]
+            return p
+
+        for i, m in enumerate(missing):
+            if m.level != level:
+                continue
+            p = bisect.bisect_left(ts, m.t)
+            r = find(right, p) if p < n else n
+            lf = find(left, p) - 1  # positions < p: left is indexed by position + 1
+            best = None
+            if lf >= 0:
+                best = lf
+            if r < n and (best is None or abs(ts[r] - m.t) < abs(ts[best] - m.t)):
+                best = r
+            if best is None or abs(ts[best] - m.t) > window:
+                continue
+            pairs[i] = idx[best]
+            right[best] = best + 1
+            left[best + 1] = best
+    return pairs
+
+
+def compare(expected: list[Edge], got: list[Edge], tolerance: float) -> list[str]:
+    """Readable difference lines; empty when the edges agree."""
+    lines: list[str] = []
+    for d in diff_edges(expected, got, tolerance):
+        if not d.changed:
             continue
         diffs: list[tuple[float, str]] = []
-        used: set[int] = set()
-        for m in missing:
-            # pair with the nearest unexpected edge of the same level: a moved edge
-            best = None
-            for k, x in enumerate(extra):
-                if k in used or x.level != m.level:
-                    continue
-                if best is None or abs(x.t - m.t) < abs(extra[best].t - m.t):
-                    best = k
-            if best is not None and abs(extra[best].t - m.t) <= max(1.0, 1000 * tolerance):
-                used.add(best)
-                x = extra[best]
-                diffs.append(
-                    (m.t, f"  ~ {_word(m.level)} at t={m.t:.6f} moved to t={x.t:.6f} "
-                          f"({x.t - m.t:+.6f} s)")
-                )
-            else:
-                diffs.append((m.t, f"  - {_word(m.level)} at t={m.t:.6f} missing"))
-        for k, x in enumerate(extra):
-            if k not in used:
-                diffs.append((x.t, f"  + {_word(x.level)} at t={x.t:.6f} unexpected"))
-        moved = len(used)
+        for m, x in d.moved:
+            diffs.append(
+                (m.t, f"  ~ {_word(m.level)} at t={m.t:.6f} moved to t={x.t:.6f} "
+                      f"({x.t - m.t:+.6f} s)")
+            )
+        for m in d.missing:
+            diffs.append((m.t, f"  - {_word(m.level)} at t={m.t:.6f} missing"))
+        for x in d.unexpected:
+            diffs.append((x.t, f"  + {_word(x.level)} at t={x.t:.6f} unexpected"))
         lines.append(
-            f"channel {ch}: {len(a)} edges expected, {len(b)} produced; {moved} moved, "
-            f"{len(missing) - moved} missing, {len(extra) - moved} unexpected "
+            f"channel {d.channel}: {d.expected} edges expected, {d.produced} produced; "
+            f"{len(d.moved)} moved, {len(d.missing)} missing, {len(d.unexpected)} unexpected "
             f"(tolerance {tolerance:g} s)"
         )
         diffs.sort(key=lambda d: d[0])

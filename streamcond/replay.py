@@ -84,7 +84,8 @@ def open_recording(
         )
     host_time = capture and src.host_time
     if kind != "text":
-        return parser, read_columnar_blocks(recording, parser, kind, host_time), host_time
+        # a columnar capture, like a text one, always carries the host time as a last column
+        return parser, read_columnar_blocks(recording, parser, kind, capture), host_time
     if capture:
         # the rows always carry the recorded host time (a last column): the sample time when
         # the data has none, and the wall-clock stamp (``utc``) of the records either way
