@@ -173,7 +173,7 @@ def test_threshold_count_and_percentage(cli):
 
 def test_table_csv_and_list_file(cli, fleet, tmp_path):
     lst = fleet / "list.txt"
-    lst.write_text("# the stations of March\nmonth/st2.csv\nmonth/st1.csv  # again below\nmonth/*.csv\n")
+    lst.write_text("# the stations of March\nmonth/st2.csv\n./month/st1.csv  # again below\nmonth/*.csv\n")
     target = tmp_path / "what-if.csv"
     code, out, err = cli("compare", "a.toml", "b.toml", "@list.txt", "--csv", str(target),
                          "--tolerance", "0.01")
