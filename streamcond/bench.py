@@ -159,7 +159,7 @@ def replay_figures(rows: int, repeat: int, workdir: Path) -> dict[str, Any]:
 
     def replay_of(path: Path) -> list[str]:
         return [py, "-m", "streamcond", "replay", str(path), "-c", str(cfg), "--events",
-                str(events), "--no-progress"]
+                str(events), "--force", "--no-progress"]
 
     have_arrow, have_pandas = _have("pyarrow"), _have("pandas")
     # (name, argv, extra environment)

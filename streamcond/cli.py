@@ -96,9 +96,11 @@ def build_parser() -> argparse.ArgumentParser:
     # subcommand's default never overwrites what was given before the command
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("-v", "--verbose", dest="verbose_sub", action="count",
-                        default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+                        default=argparse.SUPPRESS,
+                        help="more log detail on stderr (-vv for debug); also before the command")
     common.add_argument("-q", "--quiet", dest="quiet_sub", action="count",
-                        default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+                        default=argparse.SUPPRESS,
+                        help="only errors on stderr (replay: no closing summary line)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", title="commands")
 
     def cmd(name: str, help_: str, desc: str) -> argparse.ArgumentParser:
@@ -430,8 +432,7 @@ def _replay(args: argparse.Namespace) -> int:
     if not args.quiet:
         print(summary_line(res.summary), file=sys.stderr)
         if writer.path is not None:  # say what was written where
-            how = {"new": "a new file", "replace": "replaced", "append": "appended"}[mode]
-            print(f"{writer.written:,} records written to {target} ({how}"
+            print(f"{writer.written:,} records written to {target} ({writer.how}"
                   + (f", {writer.rotations} rotation(s)" if writer.rotations else "") + ").",
                   file=sys.stderr)
     if expected is None:

@@ -24,6 +24,7 @@ def convert(cfg: Any, recording: str | Path, out: str | Path, *, force: bool = F
     """Convert; returns ``{"rows", "bad_lines", "in_bytes", "out_bytes", "ratio"}``."""
     from .io.columnar import DataParquetWriter
     from .io.lineparse import HOST_T
+    from .io.capture import is_capture
     from .replay import check_columns, open_recording
 
     src, dst = Path(recording), Path(out)
@@ -34,7 +35,8 @@ def convert(cfg: Any, recording: str | Path, out: str | Path, *, force: bool = F
             raise InputError(f"The output {str(dst)!r} exists; add --force to replace it")
     if not dst.parent.is_dir():
         raise InputError(f"The folder {str(dst.parent)!r} of the output does not exist")
-    parser, blocks, host_time = open_recording(cfg, src)
+    parser, blocks, _host_time = open_recording(cfg, src)
+    host_column = is_capture(src)  # a capture's rows carry the host time as a last column
     tmp = dst.with_name(dst.name + ".part")
     writer: DataParquetWriter | None = None
     try:
@@ -43,7 +45,7 @@ def convert(cfg: Any, recording: str | Path, out: str | Path, *, force: bool = F
                 continue
             if writer is None:
                 check_columns(cfg, parser.columns)
-                cols = list(parser.columns) + ([HOST_T] if host_time else [])
+                cols = list(parser.columns) + ([HOST_T] if host_column else [])
                 writer = DataParquetWriter(tmp, cols)
             writer.write(np.asarray(parsed.rows, np.float64))
         if writer is None:

@@ -127,6 +127,17 @@ def state(channel: str, t: float, level: int, value: float) -> dict[str, Any]:
     return {"kind": STATE, "channel": channel, "t": t, "level": level, "value": value}
 
 
+def state_after(edge_record: dict[str, Any]) -> dict[str, Any]:
+    """The state an edge leaves behind (the retained MQTT state): its channel, ``t``, level and,
+    when the edge has them, ``value``, ``seq`` and ``utc``."""
+    rec = {"kind": STATE, "channel": edge_record.get("channel"), "t": edge_record.get("t"),
+           "level": edge_record.get("level")}
+    for k in ("value", "seq", "utc"):
+        if k in edge_record:
+            rec[k] = edge_record[k]
+    return rec
+
+
 def gap(t: float, t_end: float, reason: str, dropped: int = 0) -> dict[str, Any]:
     """Missing or out-of-order samples between ``t`` and ``t_end`` (source-wide)."""
     return {

@@ -84,7 +84,8 @@ def open_recording(
         )
     host_time = capture and src.host_time
     if kind != "text":
-        return parser, read_columnar_blocks(recording, parser, kind, host_time), host_time
+        # a columnar capture, like a text one, always carries the host time as a last column
+        return parser, read_columnar_blocks(recording, parser, kind, capture), host_time
     if capture:
         # the rows always carry the recorded host time (a last column): the sample time when
         # the data has none, and the wall-clock stamp (``utc``) of the records either way
@@ -140,7 +141,9 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
-    with_host_column = is_capture(recording)  # see open_recording
+    # rows with the host receive time as a last column: a text capture always (see
+    # open_recording), any other capture when that time is the sample time
+    with_host_column = host_time or is_capture(recording)
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)
@@ -199,7 +202,10 @@ def run_replay(
                 emit(pipe.flush())
             except Exception as e:  # stopped mid-block: the closing record matters more
                 log.debug("no partial windows after the interrupt: %s", e)
-        emit([records.interrupted(t_stop)])
+        stop = records.interrupted(t_stop)
+        if pipe is not None and pipe.host_col is not None:
+            records.with_utc(stop, pipe.last_host_t)
+        emit([stop])
         raise ReplayInterrupted(t_stop, res.rows) from None
     if pipe is None:
         if parser.columns is None:

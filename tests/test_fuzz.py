@@ -130,3 +130,48 @@ def test_fuzzed_stream_through_the_daemon(fmt, fuzzed_live, tmp_path, monkeypatc
     rows, bad, long_ = map(int, m.groups())
     assert rows == fz.valid
     assert bad + long_ == fz.bad
+
+
+@pytest.mark.parametrize("fmt", FORMATS)
+def test_any_mix_of_lines_any_split_counts_exactly(fmt):
+    # hypothesis picks the mix of line kinds and where the reads cut the bytes
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    import numpy as np
+
+    from fuzz_lines import COLUMNS, MAX_LINE, _junk, _row
+    from streamcond.io.lineparse import LineParser
+
+    def parse(data: bytes, cuts: list[int], reader: str):
+        p = LineParser(fmt, columns=COLUMNS if fmt == "csv" else None, needed=COLUMNS,
+                       max_line_bytes=MAX_LINE, reader=reader if fmt == "csv" else None)
+        cuts = sorted({c % (len(data) + 1) for c in cuts})
+        rows = [p.feed(data[a:b]).rows for a, b in zip([0] + cuts, cuts + [len(data)])]
+        rows.append(p.flush().rows)
+        return np.concatenate([r.reshape(-1, 3) for r in rows]), p.bad
+
+    @settings(deadline=None, max_examples=40)
+    @given(st.lists(st.tuples(st.integers(-1, 8), st.integers(0, 3), st.booleans()),
+                    min_size=1, max_size=60),
+           st.lists(st.integers(0, 10**6), max_size=8))
+    def check(kinds, cuts):
+        rng = np.random.default_rng(len(kinds))
+        dirty, clean, bad = [], [], 0
+        for i, (kind, style, crlf) in enumerate(kinds):
+            if kind < 0:
+                row = _row(fmt, i, 0.25 * style - 0.4, -0.1 * style, style)
+                dirty.append(row + (b"\r\n" if crlf else b"\n"))
+                clean.append(row + b"\n")
+            else:
+                dirty.append(_junk(fmt, rng, kind, i) + b"\n")
+                bad += 1
+        want, want_bad = parse(b"".join(clean), [], "numpy")
+        assert want_bad == 0
+        for reader in ("numpy", "pyarrow"):
+            got, got_bad = parse(b"".join(dirty), cuts, reader)
+            assert got_bad == bad
+            np.testing.assert_array_equal(got, want)
+            assert got.view(np.int64).tolist() == want.view(np.int64).tolist()  # bit for bit
+
+    check()

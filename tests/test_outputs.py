@@ -148,6 +148,11 @@ def test_unwritable_path_fails_before_any_work(work):
     assert r.returncode == 2 and "is a directory" in r.stderr
 
 
+def test_dev_null_needs_no_force(work):
+    r = _replay(work, "--events", "/dev/null")
+    assert r.returncode == 0, r.stderr
+
+
 def test_stdout_still_works(work):
     r = _replay(work, "--events", "-")
     assert r.returncode == 0
@@ -388,3 +393,30 @@ def test_capture_with_a_time_column_carries_utc_from_its_host_times(work):
     for x in edges:
         got = datetime.fromisoformat(x["utc"].replace("Z", "+00:00")).timestamp()
         assert got == pytest.approx(t0 + 0.3 + x["t"], abs=2e-6)
+
+
+def test_parquet_capture_with_host_times_carries_utc(tmp_path):
+    import tomllib
+
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from streamcond.config import config_from_dict
+    from streamcond.replay import run_replay
+
+    d = tomllib.loads(CONFIG.read_text())
+    del d["source"]["time_column"], d["source"]["time_scale"]  # sample time = host time
+    x = np.loadtxt(DEMO, delimiter=",", skiprows=1, max_rows=2500)
+    t0 = 1764654207.0
+    p = tmp_path / "cap.parquet"
+    pq.write_table(pa.table({"level_ma": x[:, 1], "pump_a": x[:, 2], "flow_v": x[:, 3],
+                             "_host_t": t0 + np.arange(len(x)) * 0.004}), p)
+    res = run_replay(config_from_dict(d), p, keep_records=True)
+    from datetime import datetime
+
+    edges = [r for r in res.records if r["kind"] == "edge"]
+    assert edges
+    for e in edges:
+        got = datetime.fromisoformat(e["utc"].replace("Z", "+00:00")).timestamp()
+        assert got == pytest.approx(e["t"], abs=2e-6)  # host time is the sample time here

@@ -28,11 +28,27 @@ MAGIC = b"# streamcond capture v1"
 
 
 def is_capture(path: str | Path) -> bool:
+    """A capture: text with the capture's first line, or a Parquet/Arrow file written by
+    ``record -o x.parquet`` or converted from a capture (it has the host time column)."""
     try:
         with open(path, "rb") as fh:
-            return fh.read(len(MAGIC)) == MAGIC
+            head = fh.read(len(MAGIC))
     except OSError:
         return False
+    if head == MAGIC:
+        return True
+    from .recording import ARROW_MAGIC, PARQUET_MAGIC
+
+    if head[:4] == PARQUET_MAGIC or head[:6] == ARROW_MAGIC:
+        from ..errors import InputError
+        from .columnar import has_host_time, is_columnar_capture
+
+        kind = "parquet" if head[:4] == PARQUET_MAGIC else "arrow"
+        try:
+            return is_columnar_capture(path, kind) or has_host_time(path, kind)
+        except InputError:
+            return False
+    return False
 
 
 class CaptureWriter:

@@ -31,7 +31,7 @@ META_KEY = b"streamcond"
 CAPTURE = b"capture v1"
 DATA = b"data v1"
 META_BAD = b"streamcond.bad_lines"
-BATCH_ROWS = 1 << 16
+BATCH_ROWS = 1 << 17  # 128 Ki rows: about the rows of one 4 MiB text block
 
 
 def _pyarrow():
@@ -92,7 +92,8 @@ def has_host_time(path: str | Path, kind: str) -> bool:
 def read_columnar_blocks(
     path: str | Path, parser: LineParser, kind: str, host_time: bool
 ) -> Iterator[tuple[Parsed, int, int]]:
-    """Like :func:`streamcond.io.recording.read_blocks` for a Parquet/Arrow IPC file."""
+    """Like :func:`streamcond.io.recording.read_blocks` for a Parquet/Arrow IPC file.
+    ``host_time``: the rows carry the host receive time as a last column (captures)."""
     p = Path(path)
     src = _Source(p, kind)
     if src.meta.get(META_KEY) == CAPTURE:

@@ -65,6 +65,8 @@ def check_output(
         )
     if p.is_dir():
         raise InputError(f"The {what} {target!r} is a directory")
+    if p.exists() and not p.is_file():
+        return p  # /dev/null, a FIFO, a terminal: nothing there to lose
     if p.exists() and mode == "new":
         raise InputError(f"The {what} {target!r} already exists; use {force_hint}")
     if p.exists() and not os.access(p, os.W_OK):
@@ -100,6 +102,7 @@ class EventLog:
         self.keep = max(int(keep), 1)
         self.clock = clock
         self.path: Path | None = None
+        self.how = ""
         self.size = 0
         self.fh: TextIO | None = None
         self._created = False
@@ -113,6 +116,12 @@ class EventLog:
         p = check_output(target, mode=mode, inputs=inputs)
         self._created = not p.exists()
         self.path = p
+        #: what happened to the path, for the user: a new file, replaced, appended, a device
+        self.how = "a new file" if self._created else {"replace": "replaced", "append": "appended"}.get(mode, "")
+        if p.exists() and not p.is_file():
+            mode = "append"  # a device or a pipe: written as it is, never rotated
+            self.max_bytes = self.max_age_s = None
+            self.how = "not a regular file"
         self._open("a" if mode == "append" else ("x" if mode == "new" else "w"))
 
     def _open(self, how: str) -> None:
@@ -125,7 +134,10 @@ class EventLog:
             raise InputError(
                 f"The events file {str(self.path)!r} cannot be written: {e.strerror}"
             ) from None
-        self.size = self.fh.seek(0, os.SEEK_END)
+        try:
+            self.size = self.fh.seek(0, os.SEEK_END)
+        except (OSError, ValueError):  # a pipe or a terminal has no size
+            self.size = 0
         self.opened = self.clock()
 
     @property

@@ -83,6 +83,7 @@ from typing import Any
 import aiomqtt
 
 from ..config import Mqtt
+from .. import records
 from ..records import to_json
 from .spool import Spool, SpoolError
 
@@ -168,11 +169,7 @@ def topic_for(record: dict[str, Any], prefix: str, qos: int) -> list[Message]:
     if kind == "edge":
         # The level an edge leaves behind is the channel's current state: retained, so a
         # subscriber arriving later still learns it.
-        state = {"kind": "state", "channel": ch, "t": record.get("t"), "level": record.get("level")}
-        if "value" in record:
-            state["value"] = record["value"]
-        if "seq" in record:
-            state["seq"] = record["seq"]
+        state = records.state_after(record)
         out.append((f"{p}/{ch}/state", to_json(state).encode("utf-8"), qos, True, "state"))
     return out
 
