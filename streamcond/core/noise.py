@@ -160,6 +160,90 @@ _RTOL = 0.03
 #: Below this relative change of the extrapolation the noise regime has been reached, and a
 #: renewed growth means the signal leaks in.
 _CONVERGING = 0.5
+#: A first difference standing this many robust sigmas off its local median is a step
+#: candidate (steps smaller than this are left to the segment votes).
+_STEP_Z = 10.0
+#: Two step heights agree (the same transition of a multi-level signal) when they differ by
+#: less than this many robust sigmas of the local height error.
+_HEIGHT_Z = 5.0
+
+
+@dataclass(frozen=True)
+class _Steps:
+    """Sharp steps found in a record and taken out of it."""
+
+    n: int  # steps removed
+    pooled: float  # median number of steps whose height each step's estimate pools
+    min_gap: int  # fewest samples between two consecutive steps (n if fewer than two)
+
+
+def _neighbour_median(d: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Median of each sample's four neighbours (two each side, itself left out; edges: the
+    nearest full neighbourhood). Leaving the sample out keeps d_i - median from being exactly
+    0 whenever d is locally monotone (a smooth noise), which would make its MAD 0."""
+    if d.size < 5:
+        return np.full(d.size, float(np.median(d)) if d.size else 0.0)
+    w = np.lib.stride_tricks.sliding_window_view(d, 5)[:, [0, 1, 3, 4]]
+    p = np.partition(w, (1, 2), axis=1)
+    med = 0.5 * (p[:, 1] + p[:, 2])
+    return np.concatenate((np.full(2, med[0]), med, np.full(2, med[-1])))
+
+
+def _destep(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], _Steps]:
+    """Take sharp steps (level shifts from one sample to the next) out of the record.
+
+    Steps, pulses and switching transients are signal, however dense. Noise flat to B Hz
+    changes little from one sample to the next when B is well below fs/2 (Var Δn = 2σ²(1 - ρ₁)),
+    while a step puts its whole height into one first difference. A first difference d_i that
+    stands more than :data:`_STEP_Z` robust sigmas off the median of its five neighbours (which
+    follows the slope of a smooth signal) is a step of height h_i = d_i - median; two adjacent
+    candidates of opposite sign that cancel are a one-sample spike, left to the segment fit's
+    spike weights. The step's local height carries the noise of one difference (error about
+    the robust scale s of d - median); a multi-level signal (pulses, a square wave, a telegraph
+    signal) repeats the same transition many times, so each height is replaced by the mean of
+    all heights that agree with it within :data:`_HEIGHT_Z`·√2·s (the same transition seen
+    again), which shrinks that error by the square root of their number. The record minus the
+    cumulative sum of the heights is the noise plus the smooth part of the signal, with the
+    noise's correlation intact across the steps (a fit broken at each step would absorb the
+    slow part of a coloured noise between them).
+    """
+    n = a.size
+    d = np.diff(a)
+    e = d - _neighbour_median(d)
+    s = MAD_TO_SIGMA * float(np.median(np.abs(e)))
+    none = _Steps(0, 0.0, n)
+    if not s > 0:
+        return a, none
+    cand = np.abs(e) > _STEP_Z * s
+    if not cand.any():
+        return a, none
+    # one-sample spikes: adjacent candidates that (nearly) cancel
+    both = cand[:-1] & cand[1:]
+    tol = _HEIGHT_Z * math.sqrt(2.0) * s
+    spike = both & (np.abs(e[:-1] + e[1:]) <= np.maximum(tol, 0.25 * np.abs(e[:-1])))
+    drop = np.zeros(cand.size, dtype=bool)
+    drop[:-1] |= spike
+    drop[1:] |= spike
+    idx = np.flatnonzero(cand & ~drop)
+    if idx.size == 0:
+        return a, none
+    h = e[idx]
+    # pool the heights that agree (sorted: each one's agreeing range by two searches)
+    order = np.argsort(h, kind="stable")
+    hs = h[order]
+    lo = np.searchsorted(hs, hs - tol, side="left")
+    hi = np.searchsorted(hs, hs + tol, side="right")
+    csum = np.concatenate(([0.0], np.cumsum(hs)))
+    count = hi - lo
+    pooled = np.empty(h.size)
+    pooled[order] = (csum[hi] - csum[lo]) / count
+    jumps = np.zeros(n)
+    jumps[idx + 1] = pooled
+    gaps = np.diff(idx)
+    info = _Steps(
+        int(idx.size), float(np.median(count)), int(gaps.min()) if gaps.size else n
+    )
+    return a - np.cumsum(jumps), info
 
 
 @dataclass(frozen=True)
@@ -170,6 +254,11 @@ class NoiseEstimate:
     """Robust noise standard deviation, in the signal's units."""
     nu0_hz: float
     """Zero (mean) up-crossing rate of the noise residual, per second."""
+    reliable: bool = True
+    """Could the window separate the noise from the signal? When False, ``sigma`` and
+    ``nu0_hz`` are the best the window allows but must not be trusted (see ``reason``)."""
+    reason: str | None = None
+    """Why the estimate is not reliable (a short sentence), None when it is."""
 
 
 @functools.lru_cache(maxsize=32)
@@ -334,10 +423,12 @@ def _diff_sigma(sc: _Scale) -> float:
     return MAD_TO_SIGMA * float(np.median(d[valid]))
 
 
-def _select(a: NDArray[np.float64], first: _Scale) -> tuple[float, _Scale]:
+def _select(a: NDArray[np.float64], first: _Scale) -> tuple[float, _Scale, str]:
     """Scan dyadic segment lengths and pick σ² (see module docstring).
 
-    Returns σ² and the scale whose residual serves for ν0 (the longer of the chosen pair).
+    Returns σ², the scale whose residual serves for ν0 (the longer of the chosen pair) and how
+    the scan ended: "plateau", "converged", "flattest", "out" (out of record) or "single" (one
+    length only).
     """
     rs: list[float] = []  # rs[j]: Richardson estimate from lengths j and j + 1
     ds: list[float] = []  # ds[j - 1]: relative change from rs[j - 1] to rs[j]
@@ -346,21 +437,21 @@ def _select(a: NDArray[np.float64], first: _Scale) -> tuple[float, _Scale]:
         hi = _scale_fit(a, 2 * lo.m)
         rs.append(_richardson(lo, hi))
         if hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v:
-            return rs[-1], hi  # v itself is flat: the segments are long enough already
+            return rs[-1], hi, "plateau"  # v itself is flat: the segments are long enough
         if len(rs) >= 2:
             ds.append(abs(rs[-1] - rs[-2]) / rs[-1] if rs[-1] > 0 else math.inf)
             if ds[-1] < _RTOL:
-                return rs[-1], hi  # the extrapolation has converged
+                return rs[-1], hi, "converged"  # the extrapolation has converged
             if len(ds) >= 2 and ds[-2] < _CONVERGING and ds[-1] > ds[-2]:
                 # The changes were shrinking (noise regime) and grow again: the signal's own
                 # movement leaks into the longer segments. Take the flattest point before it.
                 logger.debug("noise: extrapolation flattest at m=%d", lo.m)
-                return rs[-2], lo
+                return rs[-2], lo, "flattest"
         lo = hi
     if not rs:  # too short for two lengths: one length, no colour correction
-        return first.v, first
+        return first.v, first, "single"
     # Out of record while the changes were still shrinking: the longest pair is the best.
-    return rs[-1], lo
+    return rs[-1], lo, "out"
 
 
 def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
@@ -384,19 +475,28 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
     if not np.isfinite(a).all():
         raise ValueError("The noise estimate needs finite samples (split the record at gaps).")
 
+    a, steps = _destep(a)
     # Variation within a few units in the last place of the samples is rounding in the fit,
     # not noise that could be measured.
     floor = (16.0 * np.finfo(np.float64).eps * float(np.max(np.abs(a)))) ** 2
     first = _scale_fit(a, _M_MIN)
     if first.v <= floor:
         return NoiseEstimate(0.0, 0.0)
-    sigma2, ref = _select(a, first)
+    sigma2, ref, how = _select(a, first)
     if not sigma2 > floor:
         return NoiseEstimate(0.0, 0.0)
     sd = _diff_sigma(ref)
     rho1 = min(1.0, max(-1.0, 1.0 - sd * sd / (2.0 * sigma2)))
     nu0 = fs * math.acos(rho1) / (2.0 * math.pi)
-    return NoiseEstimate(sigma=math.sqrt(sigma2), nu0_hz=nu0)
+    logger.debug("noise: n=%d steps=%s scan=%s", a.size, steps, how)
+    reliable, reason = True, None
+    if how == "out":
+        reliable = False
+        reason = "the window is too short for the noise's correlation time"
+    elif how == "single":
+        reliable = False
+        reason = "the window is too short for a colour correction"
+    return NoiseEstimate(sigma=math.sqrt(sigma2), nu0_hz=nu0, reliable=reliable, reason=reason)
 
 
 _NO_IDX = np.empty(0, dtype=np.int64)
