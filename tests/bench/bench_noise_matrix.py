@@ -68,6 +68,7 @@ def _sg(x: np.ndarray) -> float:
 def load(path: str):
     spec = importlib.util.spec_from_file_location("noise_other", path)
     mod = importlib.util.module_from_spec(spec)
+    sys.modules["noise_other"] = mod
     assert spec.loader is not None
     spec.loader.exec_module(mod)
     return mod.estimate_noise
