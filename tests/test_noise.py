@@ -250,32 +250,39 @@ def test_bad_input_is_refused() -> None:
 
 
 def feed(tracker: NoiseTracker, x: np.ndarray, cuts: list[int]) -> tuple[np.ndarray, ...]:
-    """Feed x split at `cuts`; return global indices, sigmas and ν0s of all estimates."""
-    idx, sig, nu = [], [], []
+    """Feed x split at `cuts`; global indices, sigmas, ν0s, reliable flags, window sizes."""
+    idx, sig, nu, rel, win = [], [], [], [], []
     start = 0
     for stop in [*cuts, x.size]:
-        i, s, v = tracker.process(x[start:stop])
-        assert i.dtype == np.int64 and i.shape == s.shape == v.shape
-        idx.append(i + start)
-        sig.append(s)
-        nu.append(v)
+        u = tracker.process(x[start:stop])
+        assert u.idx.dtype == np.int64 and u.idx.shape == u.sigma.shape == u.nu0.shape
+        assert u.reliable.shape == u.idx.shape == u.samples.shape and len(u.reason) == u.idx.size
+        idx.append(u.idx + start)
+        sig.append(u.sigma)
+        nu.append(u.nu0)
+        rel.append(u.reliable)
+        win.append(u.samples)
         start = stop
-    return np.concatenate(idx), np.concatenate(sig), np.concatenate(nu)
+    return tuple(np.concatenate(v) for v in (idx, sig, nu, rel, win))
 
 
 def test_tracker_schedule_and_definition() -> None:
     x = LEVEL + white(6_000, np.random.default_rng(8)) + sine(6_000, 2.0)
     tr = NoiseTracker(FS, window_s=1.0, update_every=250)
     assert tr.window_n == 1000
-    idx, sig, nu = feed(tr, x, list(range(0, 6_000, 333)))
-    # Warm-up: first estimate at the sample that completes the first window, then every 250.
-    assert np.array_equal(idx, np.arange(999, 6_000, 250))
-    # Each estimate is the whole-array estimate of the window ending at that sample.
-    for i, s, v in zip(idx.tolist(), sig.tolist(), nu.tolist()):
-        ref = estimate_noise(x[i + 1 - 1000 : i + 1], FS)
-        assert (s, v) == (ref.sigma, ref.nu0_hz)
+    idx, sig, nu, rel, win = feed(tr, x, list(range(0, 6_000, 333)))
+    # Warm-up: the grid of every 250th sample reaching back from the first full window, from
+    # the first point with at least MIN_SAMPLES (250), then every 250.
+    assert np.array_equal(idx, np.arange(249, 6_000, 250))
+    # Each estimate is the whole-array estimate of the window ending at that sample (shorter
+    # before the first full window).
+    for i, s, v, r, w in zip(idx.tolist(), sig.tolist(), nu.tolist(), rel.tolist(), win.tolist()):
+        assert w == min(i + 1, 1000)
+        ref = estimate_noise(x[i + 1 - w : i + 1], FS)
+        assert (s, v, r) == (ref.sigma, ref.nu0_hz, ref.reliable)
     assert tr.samples_seen == 6_000
     assert NoiseTracker(FS, window_s=1.0).update_every == 100  # default window_n // 10
+    assert NoiseTracker(FS, window_s=1.0).first_n == 200  # the first of 1000 - j·100 >= 128
 
 
 def test_tracker_follows_a_noise_step_within_one_window() -> None:
@@ -285,9 +292,9 @@ def test_tracker_follows_a_noise_step_within_one_window() -> None:
     noise[step_at:] = 8.0 * white(n - step_at, rng)  # σ steps up to 8σ
     x = LEVEL + noise + sine(n, 5.0)
     tr = NoiseTracker(FS, window_s=2.0, update_every=100)
-    idx, sig, _ = feed(tr, x, list(range(0, n, 1000)))
+    idx, sig, _, _, _ = feed(tr, x, list(range(0, n, 1000)))
     wn = tr.window_n
-    before = idx < step_at  # windows entirely before the step
+    before = (idx < step_at) & (idx >= wn - 1)  # full windows entirely before the step
     after = idx >= step_at + wn - 1  # windows entirely after it
     assert before.sum() > 100 and after.sum() > 100
     # Truth: SIGMA before the step and 8·SIGMA after it, by construction.
@@ -303,7 +310,7 @@ def test_tracker_copy_is_independent() -> None:
     ra = a.process(x[2_345:])
     rb = b.process(x[2_345:])
     for u, v in zip(ra, rb):
-        assert np.array_equal(u, v)
+        assert np.array_equal(np.asarray(u), np.asarray(v))
     assert a.samples_seen == b.samples_seen == 5_000
 
 
@@ -318,8 +325,9 @@ CHUNK_X = (
 
 def test_tracker_reference_run_has_estimates() -> None:
     # Guard for the chunk-invariance property below: the reference produces many estimates.
-    idx, sig, _ = feed(NoiseTracker(FS, window_s=0.5, update_every=97), CHUNK_X, [])
-    assert idx.size == (4_000 - 500) // 97 + 1
+    tr = NoiseTracker(FS, window_s=0.5, update_every=97)
+    idx, sig, _, _, _ = feed(tr, CHUNK_X, [])
+    assert idx.size == (4_000 - tr.first_n) // 97 + 1
     assert np.all(np.abs(sig / SIGMA - 1) < 0.25)
 
 

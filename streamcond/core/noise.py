@@ -118,7 +118,7 @@ import functools
 import logging
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -128,6 +128,7 @@ __all__ = [
     "MIN_SAMPLES",
     "NoiseEstimate",
     "NoiseTracker",
+    "NoiseUpdates",
     "estimate_noise",
 ]
 
@@ -574,20 +575,38 @@ _NO_IDX = np.empty(0, dtype=np.int64)
 _NO_VAL = np.empty(0, dtype=np.float64)
 _NO_IDX.flags.writeable = False
 _NO_VAL.flags.writeable = False
+_NO_BOOL = np.empty(0, dtype=bool)
+_NO_BOOL.flags.writeable = False
+
+
+class NoiseUpdates(NamedTuple):
+    """The estimates one block of a :class:`NoiseTracker` completed (all empty when none)."""
+
+    idx: NDArray[np.int64]
+    """Indices into the block of the samples at which each estimate becomes available (it
+    uses the window of samples up to and including ``idx``)."""
+    sigma: NDArray[np.float64]
+    nu0: NDArray[np.float64]
+    reliable: NDArray[np.bool_]
+    reason: list[str | None]
+    samples: NDArray[np.int64]
+    """Samples in each estimate's window (fewer than ``window_n`` during the warm-up)."""
 
 
 class NoiseTracker:
     """Streaming noise estimate over a sliding window, chunk-invariant.
 
     Keeps the last ``window_n = round(window_s * sample_rate_hz)`` samples. Counting samples
-    from 1 over the tracker's life, it evaluates :func:`estimate_noise` on the window that ends
-    with sample number ``n = window_n + j * update_every`` (j = 0, 1, 2, ...): the first estimate
-    comes once a full window has been seen (warm-up; a shorter window would mix a different,
-    noisier estimator into the start), then one every ``update_every`` samples (default
-    ``window_n // 10``, at least 1). The schedule depends only on the sample count and each
-    estimate only on the window's samples, so any split of the input into blocks gives
-    identical results, bit for bit. Cost: one whole-window estimate per ``update_every``
-    samples; in between, an amortised O(1) copy per sample.
+    from 1 over the tracker's life, it evaluates :func:`estimate_noise` at the sample numbers
+    ``n = window_n + j * update_every`` (j = ..., -2, -1, 0, 1, 2, ...; ``update_every``
+    defaults to ``window_n // 10``, at least 1) that are at least :data:`MIN_SAMPLES`, on the
+    last ``min(n, window_n)`` samples. The first estimate thus comes as soon as the
+    estimator has enough samples (warm-up: a shorter window than configured, whose estimate
+    says itself whether it is reliable — a coloured noise needs a long one), and from the
+    first full window on every estimate covers ``window_n`` samples. The schedule depends only
+    on the sample count and each estimate only on its window's samples, so any split of the
+    input into blocks gives identical results, bit for bit. Cost: one estimate per
+    ``update_every`` samples; in between, an amortised O(1) copy per sample.
     """
 
     def __init__(
@@ -618,6 +637,8 @@ class NoiseTracker:
         self.window_s = float(window_s)
         self.window_n = window_n
         self.update_every = int(update_every)
+        #: the first scheduled sample number: the earliest of the grid with MIN_SAMPLES
+        self.first_n = window_n - ((window_n - MIN_SAMPLES) // self.update_every) * self.update_every
         self._count = 0  # samples seen so far
         # History: the valid samples are _store[:_fill], the newest last; the capacity of
         # 2·window_n lets small blocks be appended in place, compacting once per window_n.
@@ -629,31 +650,23 @@ class NoiseTracker:
         """Number of samples processed so far."""
         return self._count
 
-    def process(
-        self, x: ArrayLike
-    ) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
-        """Feed one block; return ``(idx, sigma, nu0)`` for the estimates it completes.
-
-        ``idx`` are int64 indices into this block of the samples at which a new estimate
-        becomes available (the estimate uses the window of samples up to and including
-        ``idx``); ``sigma`` (signal units) and ``nu0`` (Hz) are the estimates. All three are
-        empty when the block completes none.
-        """
+    def process(self, x: ArrayLike) -> NoiseUpdates:
+        """Feed one block; return the estimates it completes (:class:`NoiseUpdates`)."""
         a = np.asarray(x, dtype=np.float64).ravel()
         if not np.isfinite(a).all():
             raise ValueError("The noise tracker needs finite samples (split the stream at gaps).")
-        wn, every = self.window_n, self.update_every
+        wn, every, n_first = self.window_n, self.update_every, self.first_n
         n0 = self._count
         n1 = n0 + a.size
-        # Sample numbers n in (n0, n1] with n >= wn and (n - wn) % every == 0.
-        first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
+        # Sample numbers n in (n0, n1] with n >= n_first and (n - n_first) % every == 0.
+        first = n_first if n0 < n_first else n_first + ((n0 - n_first) // every + 1) * every
         if first > n1 and a.size <= wn and self._fill + a.size <= self._store.size:
             # no estimate due in this (short) block: just keep the samples (the common case
             # for a live block of a few milliseconds)
             self._store[self._fill : self._fill + a.size] = a
             self._fill += a.size
             self._count = n1
-            return _NO_IDX, _NO_VAL, _NO_VAL
+            return NoiseUpdates(_NO_IDX, _NO_VAL, _NO_VAL, _NO_BOOL, [], _NO_IDX)
         due = np.arange(first, n1 + 1, every, dtype=np.int64)
 
         if a.size <= wn:
@@ -672,13 +685,17 @@ class NoiseTracker:
 
         sigma = np.empty(due.size, dtype=np.float64)
         nu0 = np.empty(due.size, dtype=np.float64)
-        for j, n in enumerate(due.tolist()):  # one whole-window estimate per scheduled update
+        rel = np.empty(due.size, dtype=bool)
+        why: list[str | None] = []
+        for j, n in enumerate(due.tolist()):  # one estimate per scheduled update
             end = n - base
-            est = estimate_noise(np.array(ext[end - wn : end]), self.sample_rate_hz)
+            est = estimate_noise(np.array(ext[end - min(n, wn) : end]), self.sample_rate_hz)
             sigma[j] = est.sigma
             nu0[j] = est.nu0_hz
+            rel[j] = est.reliable
+            why.append(est.reason)
         self._count = n1
-        return due - (n0 + 1), sigma, nu0
+        return NoiseUpdates(due - (n0 + 1), sigma, nu0, rel, why, np.minimum(due, wn))
 
     def copy(self) -> NoiseTracker:
         """An independent tracker in the same state."""
