@@ -209,10 +209,11 @@ def limits(noise: str) -> tuple[float, float]:
 
 # --- the tests ----------------------------------------------------------------------------------
 
-REALISATIONS = 2
-#: Cells with at least 20 correlation times where the estimate is allowed to answer only
-#: "not reliable" (see the README's adaptive-band section): filled from measurement below.
-UNSEPARABLE: set[tuple[str, str, float]] = set()
+REALISATIONS = 4
+#: Cells with at least 20 correlation times where the estimate today answers only "not
+#: reliable" (measured; see the README's adaptive-band section): an honest answer, but not
+#: yet the right one — issue 8 asks for a value here. Shrink this set; never grow it.
+KNOWN_UNRELIABLE: set[tuple[str, str, float]] = set()
 
 
 @pytest.mark.parametrize(("signal", "noise", "window_s"), cells())
@@ -225,11 +226,12 @@ def test_matrix_cell(signal: str, noise: str, window_s: float) -> None:
     # correlation times, the chi-square spread of a variance, any statistics text).
     rel = res.ratios[res.reliable]
     assert np.all((rel > 1 / 1.5) & (rel < 1.5)), (res.ratios.tolist(), res.reasons)
-    if rel.size:
-        # Truth: SIGMA by construction; the band of the issue (median over realisations).
+    if 2 * rel.size >= res.ratios.size:
+        # Truth: SIGMA by construction; the band of the issue, on the median over the
+        # realisations (those called reliable, when they are at least half).
         med = float(np.median(rel))
         assert lo <= med <= hi, (res.ratios.tolist(), res.reasons)
-    elif required(signal, noise, window_s) and (signal, noise, window_s) not in UNSEPARABLE:
-        pytest.fail(f"no reliable estimate in a cell that must have one: {res.reasons}")
+    if required(signal, noise, window_s) and (signal, noise, window_s) not in KNOWN_UNRELIABLE:
+        assert rel.size, f"no reliable estimate in a cell that must have one: {res.reasons}"
     # An unreliable estimate always carries its reason.
     assert all(w for w, r_ in zip(res.reasons, res.reliable) if not r_)

@@ -169,6 +169,11 @@ _RTOL = 0.03
 #: Below this relative change of the extrapolation the noise regime has been reached, and a
 #: renewed growth means the signal leaks in.
 _CONVERGING = 0.5
+#: Fewest segments at the chosen length for an answer called reliable (with fewer, one
+#: segment's share of a coloured noise decides: a spread the votes cannot check).
+_K_RELIABLE = 4
+#: A "flattest point" answer is trusted when it adds at most this factor to the measured v.
+_FLAT_GAIN = 1.25
 #: An implausible jump of v between adjacent lengths (see _leap).
 _LEAP = 8.0
 _LEAP_SHARE = 0.6
@@ -480,12 +485,17 @@ def _select(
     ds: list[float] = []  # ds[j - 1]: relative change from rs[j - 1] to rs[j]
     lo = first
     vs.append(first.v)
+    flat_before = False
     while a.size // (2 * lo.m) >= _K_LONG:
         hi = _scale_fit(a, 2 * lo.m)
         vs.append(hi.v)
         rs.append(_richardson(lo, hi))
-        if hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v:
-            return rs[-1], hi, "plateau"  # v itself is flat: the segments are long enough
+        flat = hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v
+        if flat and (flat_before or a.size // (2 * hi.m) < _K_LONG):
+            # v itself is flat over two octaves (one can be a mixture's white part levelling
+            # off before its coloured part shows): the segments are long enough
+            return rs[-1], hi, "plateau"
+        flat_before = flat
         if len(rs) >= 2:
             ds.append(abs(rs[-1] - rs[-2]) / rs[-1] if rs[-1] > 0 else math.inf)
             if ds[-1] < _RTOL:
@@ -494,7 +504,11 @@ def _select(
                 # The changes were shrinking (noise regime) and grow again: the signal's own
                 # movement leaks into the longer segments. Take the flattest point before it.
                 logger.debug("noise: extrapolation flattest at m=%d", lo.m)
-                return rs[-2], lo, "flattest"
+                # Trusted only where the extrapolation adds little to what was measured at
+                # that length: beyond that it rests on the 1/(m - p) law, which the scan has
+                # not shown to hold (a noise with a long correlation tail keeps v growing).
+                ok = rs[-2] <= _FLAT_GAIN * lo.v
+                return rs[-2], lo, "flattest" if ok else "unsettled"
         lo = hi
     if not rs:  # too short for two lengths: one length, no colour correction
         return first.v, first, "single"
@@ -559,7 +573,9 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
     nu0 = fs * math.acos(rho1) / (2.0 * math.pi)
     logger.debug("noise: n=%d steps=%s scan=%s", a.size, steps, how)
     reliable, reason = True, None
-    if how == "out":
+    # few long segments decide a coloured noise's σ̂ (v grew well beyond the shortest length)
+    few = a.size // ref.m < _K_RELIABLE and sigma2 > _FLAT_GAIN * first.v
+    if how in ("out", "unsettled") or few:
         reliable = False
         reason = "the window is too short for the noise's correlation time"
     elif how == "single":
