@@ -8,7 +8,11 @@ against theory name their source beside them.
 
 from __future__ import annotations
 
+import json
 import math
+import subprocess
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -23,6 +27,9 @@ from streamcond.core.noise import (
     NoiseTracker,
     estimate_noise,
 )
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tools"))
+from make_demo import FLOW_SIGMA_V  # noqa: E402  (the demo generator's noise figure)
 
 FS = 1000.0  # Hz
 SIGMA = 0.05  # kPa, the noise's true standard deviation
@@ -350,3 +357,70 @@ def test_tracker_chunk_invariant_in_single_samples() -> None:
     ones = feed(NoiseTracker(FS, window_s=0.5, update_every=61), x, list(range(1, x.size)))
     for u, v in zip(whole, ones):
         assert np.array_equal(u, v)
+
+
+# ---------------------------------------------------------------------------------------------
+# The demo's pulse channel (issue 8): 0/3.2 V paddle-wheel pulses with contact bounce, a
+# 3-sample median prefilter, white noise of FLOW_SIGMA_V from the generator.
+
+DEMO = Path(__file__).resolve().parents[1]
+RECORDING = DEMO / "replay_data" / "orchard_pump.csv"
+CONFIG = DEMO / "config" / "orchard_pump.toml"
+TRUTH = DEMO / "replay_data" / "orchard_pump.truth.json"
+
+
+def _flow() -> tuple:
+    from streamcond.config import load_config
+    from streamcond.core.channel import build_filter
+    from streamcond.tune import pick_channel, read_channel
+
+    cfg = load_config(str(CONFIG))
+    ch = pick_channel(cfg, "flow")
+    data = read_channel(cfg, RECORDING, ch)  # as `tune` reads it
+    truth = json.loads(TRUTH.read_text())["flow"]
+    # The noise-free signal: each sample's level (the noise, 0.018 V, is 180 times smaller
+    # than the levels' distance, so the nearest level is the true one).
+    mid = (truth["high_v"] + truth["low_v"]) / 2
+    clean = np.where(data.raw > mid, truth["high_v"], truth["low_v"])
+    # The conditioned signal's own noise: filter(signal + noise) - filter(signal).
+    noise_c = data.y - build_filter(ch, data.fs).process(clean)
+    return data, clean, noise_c
+
+
+def test_demo_flow_noise_as_tune_measures_it() -> None:
+    data, clean, noise_c = _flow()
+    # tune's figure: estimate_noise on the conditioned channel (before this estimator: 1.6 V)
+    est = estimate_noise(data.yg, data.fs)
+    assert est.reliable
+    # Truth: the standard deviation of the noise the comparator sees (the median of 3 makes
+    # it smaller than the generator's 0.018 V: 1 - √3/π of the variance for white Gaussian
+    # noise away from the edges, the order statistics of three normals — from memory).
+    assert est.sigma == pytest.approx(float(noise_c.std()), rel=0.15)
+    # The unfiltered channel against the generator's own figure (tools/make_demo.py).
+    raw_est = estimate_noise(data.v, data.fs)
+    assert raw_est.reliable and raw_est.sigma == pytest.approx(FLOW_SIGMA_V, rel=0.15)
+
+
+def test_demo_flow_adaptive_band_counts_every_pulse(tmp_path: Path) -> None:
+    # An adaptive band on the flow channel, loose max_width (the case that once grew wider
+    # than the pulse and stopped the edges: 31 edges for 1,842 pulses).
+    text = CONFIG.read_text()
+    fixed = 'band = { low = 1.0, high = 2.3 }'
+    assert fixed in text
+    adaptive = 'band = { mode = "adaptive", center = 1.65, k = 6.0, window_s = 5.0, max_width = 3.0 }'
+    cfg = tmp_path / "flow_adaptive.toml"
+    cfg.write_text(text.replace(fixed, adaptive))
+    events = tmp_path / "events.jsonl"
+    run = subprocess.run(
+        [sys.executable, "-m", "streamcond", "replay", str(RECORDING), "-c", str(cfg),
+         "--events", str(events)],
+        capture_output=True, text=True, timeout=120,
+    )
+    assert run.returncode == 0, run.stderr
+    recs = [json.loads(line) for line in events.read_text().splitlines()]
+    rising = [r for r in recs if r["kind"] == "edge" and r["channel"] == "flow"
+              and r["edge"] == "rising"]
+    # Truth: the generator's pulse count (replay_data/orchard_pump.truth.json).
+    assert len(rising) == json.loads(TRUTH.read_text())["flow"]["pulses"]
+    stats = [r for r in recs if r["kind"] == "stats" and r["channel"] == "flow"]
+    assert stats and all(r["reliable"] for r in stats)

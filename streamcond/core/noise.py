@@ -164,6 +164,8 @@ _SEGMENT_Z = 4.0
 _STEP_FACTOR = 6.0
 #: Relative change of v between adjacent lengths that counts as "v has stopped growing".
 _PLATEAU = 0.10
+#: Growth of v over the octave before that still allows a plateau.
+_STEADY = 1.3
 #: Relative change between consecutive extrapolations that counts as "converged".
 _RTOL = 0.03
 #: Below this relative change of the extrapolation the noise regime has been reached, and a
@@ -485,17 +487,16 @@ def _select(
     ds: list[float] = []  # ds[j - 1]: relative change from rs[j - 1] to rs[j]
     lo = first
     vs.append(first.v)
-    flat_before = False
     while a.size // (2 * lo.m) >= _K_LONG:
         hi = _scale_fit(a, 2 * lo.m)
         vs.append(hi.v)
         rs.append(_richardson(lo, hi))
-        flat = hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v
-        if flat and (flat_before or a.size // (2 * hi.m) < _K_LONG):
-            # v itself is flat over two octaves (one can be a mixture's white part levelling
-            # off before its coloured part shows): the segments are long enough
+        steady = len(vs) < 3 or vs[-2] <= _STEADY * vs[-3]
+        if hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v and steady:
+            # v itself is flat: the segments are long enough. (Not right after a steep rise:
+            # a noise on its way to σ² rises ever more slowly, ≈ σ²(1 - c/(m - p)), so a
+            # flat step after a steep one is a fluctuation, not the plateau.)
             return rs[-1], hi, "plateau"
-        flat_before = flat
         if len(rs) >= 2:
             ds.append(abs(rs[-1] - rs[-2]) / rs[-1] if rs[-1] > 0 else math.inf)
             if ds[-1] < _RTOL:
@@ -574,7 +575,9 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
     logger.debug("noise: n=%d steps=%s scan=%s", a.size, steps, how)
     reliable, reason = True, None
     # few long segments decide a coloured noise's σ̂ (v grew well beyond the shortest length)
-    few = a.size // ref.m < _K_RELIABLE and sigma2 > _FLAT_GAIN * first.v
+    few = (
+        how != "plateau" and a.size // ref.m < _K_RELIABLE and sigma2 > _FLAT_GAIN * first.v
+    )
     if how in ("out", "unsettled") or few:
         reliable = False
         reason = "the window is too short for the noise's correlation time"
