@@ -164,6 +164,13 @@ _SEGMENT_Z = 4.0
 _STEP_FACTOR = 6.0
 #: Relative change of v between adjacent lengths that counts as "v has stopped growing".
 _PLATEAU = 0.10
+#: A renewed growth of the extrapolation's changes counts as the signal leaking in when the
+#: change at least doubles and exceeds 15 % (smaller wobbles are the spread of a noise with
+#: a long correlation tail, whose v keeps creeping up over many octaves).
+_REGROW = 2.0
+_RTOL_LEAK = 0.15
+#: Out of record with the last change of the extrapolation below this: nearly converged.
+_OUT_RTOL = 0.10
 #: Growth of v over the octave before that still allows a plateau.
 _STEADY = 1.3
 #: Relative change between consecutive extrapolations that counts as "converged".
@@ -175,7 +182,7 @@ _CONVERGING = 0.5
 #: segment's share of a coloured noise decides: a spread the votes cannot check).
 _K_RELIABLE = 4
 #: A "flattest point" answer is trusted when it adds at most this factor to the measured v.
-_FLAT_GAIN = 1.25
+_FLAT_GAIN = 1.6
 #: An implausible jump of v between adjacent lengths (see _leap).
 _LEAP = 8.0
 _LEAP_SHARE = 0.6
@@ -501,7 +508,7 @@ def _select(
             ds.append(abs(rs[-1] - rs[-2]) / rs[-1] if rs[-1] > 0 else math.inf)
             if ds[-1] < _RTOL:
                 return rs[-1], hi, "converged"  # the extrapolation has converged
-            if len(ds) >= 2 and ds[-2] < _CONVERGING and ds[-1] > ds[-2]:
+            if len(ds) >= 2 and ds[-2] < _CONVERGING and ds[-1] > max(_REGROW * ds[-2], _RTOL_LEAK):
                 # The changes were shrinking (noise regime) and grow again: the signal's own
                 # movement leaks into the longer segments. Take the flattest point before it.
                 logger.debug("noise: extrapolation flattest at m=%d", lo.m)
@@ -513,7 +520,10 @@ def _select(
         lo = hi
     if not rs:  # too short for two lengths: one length, no colour correction
         return first.v, first, "single"
-    # Out of record while the changes were still shrinking: the longest pair is the best.
+    # Out of record while the changes were still shrinking: the longest pair is the best —
+    # trusted when the last change was already small (nearly converged).
+    if ds and ds[-1] < _OUT_RTOL:
+        return rs[-1], lo, "nearly"
     return rs[-1], lo, "out"
 
 
