@@ -9,7 +9,9 @@ of three simple baselines:
   the factor that makes it 1 on white Gaussian noise (simulated here, 10⁶ samples);
 * ``SG``: 1.4826·median|x - SG(x)|/sqrt(1 - c₀), the residual of a Savitzky–Golay fit (21
   samples, cubic; c₀ its central coefficient: for white noise Var(x - Hx) = σ²(1 - c₀), H a
-  projection).
+  projection);
+
+and, for band-limited noise, ν0 against Rice's B/√3 (S. O. Rice, BSTJ 1944-45).
 
 Usage::
 
@@ -87,7 +89,7 @@ def main() -> None:
     head = f"{'signal':15} {'noise':15} {'win':>5}  {'med':>6} {'p10':>6} {'p90':>6} {'rel':>4}"
     if other:
         head += f"  {'before':>6}"
-    head += f"  {'dMAD':>6} {'rmed':>6} {'SG':>6}"
+    head += f"  {'dMAD':>6} {'rmed':>6} {'SG':>6}  {'ν0/Rice':>7}"
     print(head)
     n_req = n_ok = n_unrel = n_ok_before = n_cells = n_ok_all = n_silent = n_silent_b = 0
     for s, z, w in M.cells():
@@ -118,6 +120,12 @@ def main() -> None:
             line += f"  {mb:6.3f}"
         base = [np.median([f(row) for row in x]) / M.SIGMA for f in (_dmad, _rmed, _sg)]
         line += "  " + " ".join(f"{b:6.3f}" for b in base)
+        if z in M.BAND_HZ and rel.any():
+            # Rice: ν0 = B/√3 for noise flat to B Hz (median over the reliable realisations)
+            nu = np.median([e.nu0_hz for e, r_ in zip(res, rel) if r_])
+            line += f"  {nu / (M.BAND_HZ[z] / math.sqrt(3.0)):7.3f}"
+        else:
+            line += f"  {'':7}"
         line += "" if ok else ("  (unreliable)" if not rel.any() else "  OUT")
         print(line, flush=True)
     print(f"\ncells: {n_cells}; within the band: {n_ok_all}; required (>= 20 correlation "
