@@ -61,24 +61,47 @@ adjacent pair gives a Richardson extrapolation in x = 1/(m - p) that removes the
 
     R(m₁, m₂) = (x₁·v(m₂) - x₂·v(m₁)) / (x₁ - x₂),   m₂ = 2·m₁.
 
-Scanning upward, the first of these decides:
+Scanning upward (at the longer lengths down to two segments, so that a short window still
+reaches segments long compared with a coloured noise's correlation time), the first of these
+decides:
 
-1. v itself has stopped growing (``|v(m₂) - v(m₁)| < 10 % of v(m₂)``): σ̂² = R(m₁, m₂). White
-   noise gets here at the first pair, whatever the signal does on longer time scales.
+1. v itself has stopped growing (``|v(m₂) - v(m₁)| < 10 % of v(m₂)``), and did not rise by more
+   than 30 % over the octave before (a noise on its way to σ² rises ever more slowly, so a flat
+   step right after a steep one is a fluctuation): σ̂² = R(m₁, m₂). White noise gets here at
+   the first pair, whatever the signal does on longer time scales.
 2. The extrapolation has converged (two consecutive R within 3 %): σ̂² = the later R.
 3. The relative changes of R, after shrinking below 50 % (noise regime, the 1/(m - p) law
-   taking hold), grow again: the signal's own movement is leaking into the longer segments;
-   σ̂² = the R before the growth (the flattest point).
-4. Out of record: the last R (the window was short for this noise's correlation time).
+   taking hold), grow again — at least doubling and beyond 15 %, as smaller wobbles are the
+   spread of a noise with a long correlation tail: the signal's own movement is leaking into
+   the longer segments; σ̂² = the R before the growth (the flattest point), trusted only if it
+   adds at most 60 % to the v measured there.
+4. Out of record: the last R (trusted only if its last change was under 10 %).
 
 Shortest first, because longer segments let more of the signal's curvature and more steps in.
 The signal must move slowly compared with the noise: over a segment of a few tens of noise
 correlation times it must look like a cubic (measured: Butterworth noise at fs/100 under a sine
-of ten times its σ is estimated within 3 % down to a 1 s sine period), and steps must be rarer
-than one per such segment (a pulse train stepping every 100 samples is fine on white noise,
-whose segments are 16-32 samples, but not on noise low-passed at fs/20, which needs ~256). No
-method of this kind can separate a noise whose spectrum reaches down to the signal's own time
-scale.
+of ten times its σ is estimated within 3 % down to a 1 s sine period). No method of this kind
+can separate a noise whose spectrum reaches down to the signal's own time scale.
+
+**Steps first.** Sharp steps — pulses, square waves, switching, a motor's start — are taken out
+before the segments are fitted (:func:`_destep`): a first difference far off the median of its
+neighbours is a step, its height is pooled with every other step of the same transition (the
+levels of a pulse train recur), and the record minus those steps keeps the noise whole across
+them, so that even a pulse train stepping every 4 samples under a noise correlated over 17 is
+measured right. Steps smaller than 10 robust sigmas of the differences are left to the votes.
+
+**Heavy tails.** The spike limit follows the standard deviation of the residuals it keeps
+(a fixed point of limit = 6·rms), not only their MAD, so a Student-t noise keeps most of its
+tails (its σ̂ is its standard deviation, about 0.9 of it at 3 degrees of freedom) while
+one-sample spikes of 10σ and more are still weighted out.
+
+**When the answer is not to be trusted** (``reliable = False`` and a reason): the scan ran out
+of record before settling, or a few long segments decided a coloured noise's σ̂ (fewer than
+four at the chosen length while v grew by more than 60 % from the shortest length) — "the
+window is too short for the noise's correlation time"; or v leapt between two lengths, up to
+one past the chosen one (:func:`_leap`) — "the signal moves on the noise's own time scale".
+The figures are still returned (the best the window allows), and every caller must read the
+flag: the adaptive band keeps its last reliable width, the stats say so.
 
 **ν0 from the same residual, without the separation distorting it.** For a sampled Gaussian
 sequence the probability of an up-crossing of the mean between two samples is the bivariate
