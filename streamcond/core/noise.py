@@ -575,8 +575,9 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
 
     Method and formulas in the module docstring. ``x`` is a 1-D array of at least
     :data:`MIN_SAMPLES` finite samples at ``sample_rate_hz``. A record without any variation
-    gives ``NoiseEstimate(0.0, 0.0)``. Records shorter than 256 samples allow only one segment
-    length, so the coloured-noise correction is skipped (exact for white noise only).
+    gives ``NoiseEstimate(0.0, 0.0)``. The result's ``reliable`` says whether the record could
+    separate the noise from the signal (``reason`` says why not); read it before using
+    ``sigma``: an unreliable figure is the best the record allows, not a measurement.
     """
     fs = float(sample_rate_hz)
     if not (math.isfinite(fs) and fs > 0):
