@@ -249,3 +249,24 @@ def test_narrowing_update_that_would_flip_the_level_is_held_back():
     # after the flip nothing holds it back: the band narrows to k·σ_quiet (±25 %, as above)
     after = [_width(r) for r in stats if r["t"] >= 21.0]
     assert after and all(0.75 * 0.06 < wd < 1.25 * 0.06 for wd in after)
+
+
+def test_a_sine_starting_at_its_zero_crossing_gives_no_start_up_burst():
+    """A 0.5 Hz sine of 40σ starting at the band centre, min_width tiny: before the noise is
+    measured nothing is decided; afterwards each crossing of the centre gives one edge."""
+    n = int(20 * FS)
+    t = np.arange(n) / FS
+    x = CENTER + 40 * SIGMA_QUIET * np.sin(2 * np.pi * 0.5 * t)
+    x = x + SIGMA_QUIET * np.random.default_rng(12).standard_normal(n)
+    band = dict(ADAPTIVE, min_width=0.001)
+    recs = replay(band, t, x)
+    first_estimate_t = _first_estimate_n(band) / FS
+    state = of_kind(recs, "state")[0]
+    assert state["t"] >= first_estimate_t
+    edges = of_kind(recs, "edge")
+    # Truth: the sine crosses its centre at t = k·1 s (closed form), k = 1 .. 19 after the
+    # first decision (< 1 s); one edge each, alternating, within the time the sine needs to
+    # cross half the band (h/slope, slope 2π·0.5·40σ at a crossing: about 12 ms for h = 3σ).
+    crossings = np.arange(1, 20)
+    assert len(edges) == crossings.size
+    assert np.all(np.abs(np.array([e["t"] for e in edges]) - crossings) < 0.05)
