@@ -256,7 +256,6 @@ KNOWN_UNRELIABLE: set[tuple[str, str, float]] = {
     ('pump', 'flat to 5 Hz', 30.0),
     ('pump', 'flat to 30 Hz', 0.5),
     ('pump', 'flat to 30 Hz', 1.0),
-    ('pump', 'flat to 100 Hz', 0.5),
     ('telegraph', 'flat to 30 Hz', 0.5),
     ('telegraph', 'flat to 30 Hz', 1.0),
     ('spikes', 'flat to 30 Hz', 0.5),

@@ -171,6 +171,8 @@ _K_MIN = 8
 #: Fewest segments at the longer lengths of the scan (a short window needs long segments
 #: for a coloured noise, and few of them fit).
 _K_LONG = 2
+#: Fewest segments for the votes across segments to be taken.
+_K_VOTE = 4
 #: Fewest samples :func:`estimate_noise` accepts (one length, _K_MIN segments of _M_MIN).
 MIN_SAMPLES: int = _M_MIN * _K_MIN
 #: A sample whose residual exceeds this many pilot sigmas is a spike (weight 0).
@@ -259,7 +261,7 @@ def _destep(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], _Steps]:
     slow part of a coloured noise between them).
     """
     n = a.size
-    d = np.diff(a)
+    d = a[1:] - a[:-1]
     e = d - _neighbour_median(d)
     ae = np.abs(e)
     k = ae.size // 2
@@ -293,7 +295,7 @@ def _destep(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], _Steps]:
     pooled[order] = (csum[hi] - csum[lo]) / count
     jumps = np.zeros(n)
     jumps[idx + 1] = pooled
-    gaps = np.diff(idx)
+    gaps = idx[1:] - idx[:-1]
     info = _Steps(
         int(idx.size), float(np.median(count)), int(gaps.min()) if gaps.size else n
     )
@@ -439,7 +441,10 @@ def _scale_fit(x: NDArray[np.float64], m: int) -> _Scale:
         if cnt == 0:
             break
         rms = math.sqrt(float(np.sum(sq, where=kept)) / cnt / (1.0 - _P / m))
-        limit = min(max(_TAIL_Z * rms, _SPIKE_Z * pilot), _TAIL_CAP * _SPIKE_Z * pilot)
+        new = min(max(_TAIL_Z * rms, _SPIKE_Z * pilot), _TAIL_CAP * _SPIKE_Z * pilot)
+        if new == limit:
+            break
+        limit = new
     w = np.abs(r0) <= limit
     # Hard-rejection reweighting: a spike drags the unweighted fit and with it the residuals
     # of its neighbours, so flags are recomputed from the refit (a wrongly flagged clean
@@ -479,7 +484,7 @@ def _scale_fit(x: NDArray[np.float64], m: int) -> _Scale:
     tail = csum[:, -1:] - csum[:, :-1]
     step = np.max(tail * tail / _basis(m)[2], axis=1)
     keep = ok.copy()
-    if ok.any():
+    if ok.sum() >= _K_VOTE:  # votes across fewer segments would mean nothing
         keep &= _vote(np.log(s2, where=ok, out=np.zeros_like(s2)), ok)
         keep &= step <= _STEP_FACTOR * float(_median(step[ok]))
     v = float(rss[keep].sum() / dof[keep].sum()) if keep.any() else 0.0
@@ -497,7 +502,7 @@ def _richardson(lo: _Scale, hi: _Scale) -> float:
 
 def _diff_sigma(sc: _Scale) -> float:
     """Robust standard deviation of the residual's first differences (kept pairs only)."""
-    d = np.abs(np.diff(sc.r, axis=1))
+    d = np.abs(sc.r[:, 1:] - sc.r[:, :-1])
     valid = sc.w[:, 1:] & sc.w[:, :-1] & sc.keep[:, None]
     if not valid.any():
         return 0.0
