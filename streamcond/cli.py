@@ -153,17 +153,31 @@ def build_parser() -> argparse.ArgumentParser:
 
     t = cmd(
         "tune",
-        "measure a channel's noise and suggest a band",
-        "Read a recording through the same parser and prefilter as replay, measure the channel's\n"
-        "noise (robust sigma and zero up-crossing rate), sweep band widths, find the plateau of\n"
-        "widths over which the edge count is stable, and suggest a width that lies on it and meets\n"
-        "a target false-edge rate (Rice's formula).",
+        "measure each channel's noise and suggest a band",
+        "Read a recording (or the live port, --port-seconds) through the same parser and\n"
+        "prefilter as replay, and for each channel: measure the noise (robust sigma and zero\n"
+        "up-crossing rate), sweep band widths, find the plateau of widths over which the edge\n"
+        "count is stable, and suggest a width that lies on it and meets a target false-edge rate\n"
+        "(Rice's formula). A pulse channel (a signal jumping between two levels, e.g. a paddle\n"
+        "wheel) gets a band between its levels, a dwell sized from the measured bounce, and its\n"
+        "pulse rate. --write puts the suggestion into the config.",
     )
-    t.add_argument("recording", metavar="RECORDING", help="recorded stream (CSV/kv/JSON lines)")
+    t.add_argument("recording", metavar="RECORDING", nargs="?",
+                   help="recorded stream (CSV/kv/JSON lines, or a capture of `record`)")
     t.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
-    t.add_argument("--channel", required=True, metavar="NAME", help="the channel to tune")
-    t.add_argument("--json", action="store_true", help="machine-readable output")
-    t.add_argument("--plot", metavar="PNG", help="write a picture: trace, band, edges, sweep")
+    t.add_argument("--channel", metavar="NAME", help="the channel to tune (default: every channel)")
+    t.add_argument("--port-seconds", type=_positive_float, metavar="N",
+                   help="instead of a recording, read the config's serial port for N seconds")
+    t.add_argument("--pulse", action=argparse.BooleanOptionalAction, default=None,
+                   help="tune as a pulse channel (--no-pulse: as a level channel); default: "
+                   "decided from the signal")
+    t.add_argument("--json", action="store_true",
+                   help="machine-readable output (every channel: {\"channels\": {name: ...}})")
+    t.add_argument("--plot", metavar="PNG",
+                   help="write a picture per channel (PNG-channel.png when several)")
+    t.add_argument("--write", action="store_true",
+                   help="put the suggested band (and dwell) into CONFIG in place, keeping its "
+                   "comments and layout, and print the change as a diff")
     t.add_argument(
         "--target-rate",
         type=_positive_float,
