@@ -92,16 +92,6 @@ class TuneResult:
     pulse: Any = None
     #: a dwell to put in the config with the band (pulse mode), else None: keep the channel's
     suggested_dwell: dict[str, float] | None = None
-    #: how the config writes the band now: "low_high", "center_width" or "adaptive"
-    band_style: str = "center_width"
-
-
-def band_style(ch: Channel) -> str:
-    """How the channel's band is written in its config (kept by ``--write``)."""
-    if isinstance(ch.band, AdaptiveBand):
-        return "adaptive"
-    fields = getattr(ch.band, "model_fields_set", set())
-    return "low_high" if "low" in fields else "center_width"
 
 
 def _fallback_scale(y: np.ndarray) -> float:
@@ -338,7 +328,6 @@ def analyse(
         fault_samples=data.fault_samples,
         reliable=reliable,
         reason=reason,
-        band_style=band_style(ch),
     )
     if sug.width is not None:
         _recommend_and_check(data, res)

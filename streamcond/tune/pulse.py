@@ -240,7 +240,6 @@ def analyse_pulse(
         _conditioner,
         _filter_text,
         _records,
-        band_style,
         noise_of,
     )
 
@@ -381,7 +380,6 @@ def analyse_pulse(
         reason=reason,
         pulse=findings,
         suggested_dwell=None if dwell is None else {"rise_s": dwell, "fall_s": dwell},
-        band_style="low_high" if band_style(ch) != "adaptive" else "adaptive",
     )
     return res
 
