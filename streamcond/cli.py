@@ -33,7 +33,8 @@ examples:
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
   streamcond bench
 
-exit codes: 0 success, 1 --expect found differences, 2 bad usage, config or input."""
+exit codes: 0 success, 1 --expect found differences or a --probe check failed,
+2 bad usage, config or input."""
 
 
 class _Formatter(argparse.RawDescriptionHelpFormatter):
@@ -194,6 +195,11 @@ def build_parser() -> argparse.ArgumentParser:
     )
     c.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     c.add_argument("--json", action="store_true", help="print the resolved settings as JSON")
+    c.add_argument("--probe", action="store_true",
+                   help="try everything the daemon needs (port, first lines, sample rate, broker, "
+                   "TLS files, spool directory): a line each; exit 0 only when all pass, else 1")
+    c.add_argument("--probe-seconds", type=_positive_float, default=None, metavar="S",
+                   help="how long --probe listens to the port (default: 3)")
 
     b = cmd(
         "bench",
@@ -337,6 +343,10 @@ def summary_line(s: dict) -> str:
 
 
 def _check(args: argparse.Namespace) -> int:
+    if getattr(args, "probe", False):
+        from .probe import main as probe_main
+
+        return probe_main(args)
     from .config import load_config
     from .describe import describe_config
 
