@@ -201,6 +201,28 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--probe-seconds", type=_positive_float, default=None, metavar="S",
                    help="how long --probe listens to the port (default: 3)")
 
+    w = cmd(
+        "watch",
+        "live view of a station: each channel's value, band, level, noise and edges",
+        "A live view for commissioning. Per channel: value, band, level, noise sigma and the\n"
+        "margin in sigmas, edges in the last minute, age of the value, chatter flag and a small\n"
+        "trace against the band; for the station: source rate, bad lines, spool depth and the\n"
+        "broker state. Reads what the daemon publishes over MQTT (its edge, state and stats\n"
+        "topics and the retained health record); with --port, when no daemon is running, reads\n"
+        "the serial port and runs the pipeline itself. Refreshed in place on a terminal, plain\n"
+        "text otherwise. Ctrl-C ends it.",
+    )
+    w.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    w.add_argument("--port", action="store_true",
+                   help="read the config's serial port and run the pipeline here (only when no "
+                   "daemon has the port open)")
+    w.add_argument("--duration", type=_positive_float, metavar="S",
+                   help="stop after S seconds (default: until Ctrl-C)")
+    w.add_argument("--plain", action="store_true",
+                   help="plain text blocks even on a terminal (the default for a pipe or file)")
+    w.add_argument("--interval", type=_positive_float, metavar="S",
+                   help="seconds between text blocks in plain mode (default: 2)")
+
     b = cmd(
         "bench",
         "measure throughput on this machine",
@@ -264,6 +286,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "watch":
+            from .watch import main as watch_main
+
+            return watch_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 

@@ -259,18 +259,33 @@ def tls_files(cfg: Config) -> Check | None:
     return Check(OK, "TLS files", ", ".join(f"{k} {p}" for k, p in files) + " load")
 
 
-async def _connect(cfg: Config, password: str | None, tls: Any) -> None:
+def observer_client(mq: Any, password: str | None, tls: Any, tag: str) -> Any:
+    """An MQTT client for a tool that only looks (the probe, the live view): the config's
+    broker, user and TLS, and a client id of its own — the daemon's id would make the broker
+    drop a running daemon (MQTT 3.1.1 §3.1.4: a second connection with the same id takes
+    over)."""
     import aiomqtt
 
-    mq = cfg.output.mqtt
-    assert mq is not None
-    # its own client id: the daemon's id would make the broker drop a running daemon
-    client = aiomqtt.Client(
+    return aiomqtt.Client(
         mq.host, mq.port, username=mq.username, password=password,
-        identifier="streamcond-probe-" + secrets.token_hex(3), tls_context=tls,
+        identifier=f"streamcond-{tag}-" + secrets.token_hex(3), tls_context=tls,
         timeout=BROKER_TIMEOUT_S, keepalive=max(5, mq.keepalive_s),
     )
-    async with client:
+
+
+def observer_credentials(mq: Any) -> tuple[str | None, Any]:
+    """The password (read from its file) and the TLS context for :func:`observer_client`;
+    raises OSError/ValueError/ssl.SSLError naming files only."""
+    from .io.mqtt import _tls_context, read_password
+
+    password = read_password(mq.password_file) if mq.password_file else None
+    return password, _tls_context(mq)
+
+
+async def _connect(cfg: Config, password: str | None, tls: Any) -> None:
+    mq = cfg.output.mqtt
+    assert mq is not None
+    async with observer_client(mq, password, tls, "probe"):
         pass
 
 
