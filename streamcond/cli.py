@@ -25,6 +25,7 @@ The same pipeline conditions a live serial stream and replays recordings."""
 
 EPILOG = """\
 examples:
+  streamcond demo --duration 20
   streamcond check -c config/orchard_pump.toml
   streamcond run -c /etc/streamcond/site.toml
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml --events -
@@ -201,6 +202,22 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--probe-seconds", type=_positive_float, default=None, metavar="S",
                    help="how long --probe listens to the port (default: 3)")
 
+    dm = cmd(
+        "demo",
+        "the daemon live on a simulated device and an embedded broker, with the live view",
+        "A simulated device (a pseudo-terminal fed the demo recording in real time), an embedded\n"
+        "MQTT broker on a free loopback port (amqtt: pip install 'streamcond[demo]'), the daemon\n"
+        "on them, and the live view of what it publishes — serial in, clean events on MQTT, with\n"
+        "no hardware and no broker installed. Ends after --duration or at Ctrl-C.",
+    )
+    dm.add_argument("--duration", type=_positive_float, metavar="S",
+                    help="stop after S seconds (default: until Ctrl-C)")
+    dm.add_argument("--speed", type=_positive_float, metavar="X",
+                    help="play the recording X times faster than real time (default: 1)")
+    dm.add_argument("--plain", action="store_true", help="plain text view even on a terminal")
+    dm.add_argument("--interval", type=_positive_float, metavar="S",
+                    help="seconds between text blocks in plain mode (default: 2)")
+
     w = cmd(
         "watch",
         "live view of a station: each channel's value, band, level, noise and edges",
@@ -286,6 +303,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "demo":
+            from .demo import main as demo_main
+
+            return demo_main(args)
         if args.command == "watch":
             from .watch import main as watch_main
 

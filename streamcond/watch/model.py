@@ -61,6 +61,7 @@ class Row:
     edges_minute: int
     age: str
     chatter: bool
+    counting: bool  # a pulse-counting channel: the chatter criterion does not apply
     trace: str  # block characters
     zones: str  # one of "^", "-", "v", " " per trace character: above, inside, below the band
     fault: str | None = None
@@ -146,7 +147,14 @@ class WatchModel:
             elif isinstance(ch.band, AdaptiveBand):
                 cv.band_kind = "adaptive"
             self.channels[ch.name] = cv
-        self._counting = {ch.name for ch in cfg.channel if ch.measure is not None}
+        # channels whose edges are pulses to count (a flow meter, a shaft): many activations a
+        # minute are their normal work, not chatter
+        self._counting = {
+            ch.name for ch in cfg.channel
+            if ch.measure is not None and (ch.measure.pulses_per_unit is not None
+                                           or ch.measure.pulses_per_rev is not None
+                                           or ch.measure.frequency)
+        }
         self.health: dict[str, Any] | None = None
         self.health_at: float | None = None
         self.status: str | None = None
@@ -235,11 +243,12 @@ class WatchModel:
         """The stats record's flag, or, between two stats records, the same criterion on the
         edges seen here ([stats] chatter_count activations within chatter_window_s; three in a
         minute is the alarm-management practice of ISA-18.2, from memory). Not for a channel
-        that counts pulses (a ``measure``): its activations are the point."""
-        if cv.chattering_stats:
-            return True
+        that counts pulses (a ``measure`` with a frequency, pulses per unit or per revolution):
+        its activations are its work."""
         if cv.name in self._counting:
             return False
+        if cv.chattering_stats:
+            return True
         st = self.cfg.stats
         recent = sum(1 for t in cv.rising_times if now - t <= st.chatter_window_s)
         return recent >= st.chatter_count
@@ -267,6 +276,7 @@ class WatchModel:
                 edges_minute=sum(1 for t in cv.edge_times if now - t <= EDGE_WINDOW_S),
                 age=fmt_age(None if cv.value_at is None else now - cv.value_at),
                 chatter=self._chatter(cv, now),
+                counting=cv.name in self._counting,
                 trace=trace,
                 zones=zones,
                 fault=cv.fault,

@@ -22,7 +22,7 @@ def plain(s: Snapshot, clock: str = "") -> str:
             f"  spool:  {s.spool}"]
     cells = [COLUMNS]
     for r in s.rows:
-        chatter = "CHATTER" if r.chatter else "no"
+        chatter = "CHATTER" if r.chatter else ("pulses" if r.counting else "no")
         # the trace's zones as letters: ^ above the band, - inside, v below
         cells.append([r.name, r.value, r.band, r.level, r.sigma, r.margin, str(r.edges_minute),
                       r.age, chatter, r.zones.rstrip() or "—"])
@@ -62,7 +62,8 @@ def rich_view(s: Snapshot, clock: str = "") -> Any:
         for ch, z in zip(r.trace, r.zones):
             trace.append(ch, style=_ZONE_STYLE.get(z, ""))
         level = Text(r.level, style="bold green" if r.level == "HIGH" else ("dim" if r.level == "?" else ""))
-        chatter = Text("CHATTER", style="bold red") if r.chatter else Text("no", style="dim")
+        chatter = (Text("CHATTER", style="bold red") if r.chatter
+                   else Text("pulses" if r.counting else "no", style="dim"))
         name = Text(r.name, style="bold")
         if r.fault:
             name.append(f" ({r.fault})", style="red")
