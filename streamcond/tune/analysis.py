@@ -34,6 +34,8 @@ PLAUSIBLE_PLATEAU_SIGMA: float = 4.0
 #: The adaptive alternative is replayed on at most this many samples (its noise tracker is the
 #: costly part of tune: one whole-window estimate per window_s/10).
 ADAPTIVE_CHECK_SAMPLES: int = 300_000
+#: A plateau of fewer edges than this rests on too few transitions to trust (a warning).
+FEW_TRANSITIONS: int = 6
 #: Half-width kept inside each end of the plateau, in units of σ̂. Both ends are set by the
 #: largest noise excursions of this recording; three sigmas more is our choice of margin
 #: (common practice, no published source).
@@ -298,6 +300,13 @@ def analyse(
                 "The edge count is still stable at the widest band swept; its upper end was "
                 "not found"
             )
+    if plateau is not None and plateau.edges < FEW_TRANSITIONS:
+        advice.append(
+            f"Only {plateau.edges} real transition{'s' if plateau.edges != 1 else ''} on this "
+            f"recording: the plateau rests on very few crossings, and a stretch of chatter can "
+            f"look like one. Tune again on a longer recording (or a longer --port-seconds) "
+            f"that holds several real transitions of this channel"
+        )
     n = data.t.size
     res = TuneResult(
         channel=ch.name,
