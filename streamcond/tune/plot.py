@@ -26,6 +26,18 @@ def supported_extensions() -> set[str]:
     return set(FigureCanvasAgg(Figure()).get_supported_filetypes())
 
 
+def save(fig, path: str | Path) -> None:
+    """Write the figure and close it; a path that cannot be written is one sentence."""
+    import matplotlib.pyplot as plt
+
+    try:
+        fig.savefig(path)
+    except OSError as e:
+        raise InputError(f"The picture {str(path)!r} cannot be written: {e.strerror}") from None
+    finally:
+        plt.close(fig)
+
+
 def readable_log_axis(axis) -> None:
     """Log-axis ticks a person can read between decades: 1, 2 and 5 times each power of ten,
     labelled as plain numbers (0.02, 0.05, 0.1, ...), the other eighths unlabelled."""
@@ -280,10 +292,5 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
                fontsize=8, frameon=False)
     ax3.set_title("Sweep: edge count vs band width (the real transitions form the plateau)",
                   fontsize=10)
-    try:
-        fig.savefig(path)
-    except OSError as e:
-        raise InputError(f"The picture {str(path)!r} cannot be written: {e.strerror}") from None
-    finally:
-        plt.close(fig)
+    save(fig, path)
 

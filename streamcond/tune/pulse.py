@@ -506,7 +506,7 @@ def plot_pulse(res: Any, data: ChannelData, path: str | Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from .plot import show_band
+    from .plot import save, show_band
 
     p: PulseFindings = res.pulse
     lv = p.levels
@@ -575,9 +575,4 @@ def plot_pulse(res: Any, data: ChannelData, path: str | Path) -> None:
     ax3.set_ylabel("pulse frequency (Hz)")
     ax3.grid(alpha=0.3)
     ax3.set_title("Pulse frequency at each rising edge", fontsize=10)
-    try:
-        fig.savefig(path)
-    except OSError as e:
-        raise InputError(f"The picture {str(path)!r} cannot be written: {e.strerror}") from None
-    finally:
-        plt.close(fig)
+    save(fig, path)
