@@ -32,6 +32,9 @@ examples:
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
+  streamcond check -c site.toml --probe
+  streamcond tune -c site.toml --port-seconds 180 --write
+  streamcond watch -c site.toml
   streamcond bench
 
 exit codes: 0 success, 1 --expect found differences or a --probe check failed,
