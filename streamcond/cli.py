@@ -172,7 +172,8 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     t.add_argument("--channel", metavar="NAME", help="the channel to tune (default: every channel)")
     t.add_argument("--port-seconds", type=_positive_float, metavar="N",
-                   help="instead of a recording, read the config's serial port for N seconds")
+                   help="instead of a recording, read the config's serial port for N seconds "
+                   "(stop the daemon first: two readers would share the port's lines)")
     t.add_argument("--pulse", action=argparse.BooleanOptionalAction, default=None,
                    help="tune as a pulse channel (--no-pulse: as a level channel); default: "
                    "decided from the signal")

@@ -42,8 +42,8 @@ PROBE_SECONDS: float = 3.0
 #: published source.
 RATE_TOLERANCE: float = 0.05
 #: Lines may arrive this much slower or faster than the device's clock says (host buffering
-#: over a few seconds).
-ARRIVAL_TOLERANCE: float = 0.10
+#: and scheduling over a few seconds; a wrong time_scale is off by a factor of 1000).
+ARRIVAL_TOLERANCE: float = 0.15
 #: Free space the spool's file system must have.
 MIN_FREE_MIB: float = 64.0
 #: Connecting to the broker may take this long.
