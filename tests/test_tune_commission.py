@@ -357,3 +357,24 @@ def test_port_seconds_without_a_device_is_a_sentence(tmp_path):
     assert r.returncode == 2 and "does not exist" in r.stderr and "Traceback" not in r.stderr
     r = run_cli("tune", str(DEMO), "-c", str(cfg), "--port-seconds", "1")
     assert r.returncode == 2 and "one of the two" in r.stderr
+
+
+def test_write_keeps_a_band_sub_table_its_comments_and_the_last_newline(tmp_path):
+    from streamcond.tune.write import write_config
+
+    cfg = tmp_path / "sub.toml"
+    cfg.write_text(
+        '[source]\nkind = "file"\nformat = "csv"\ntime_column = "t_ms"\ntime_scale = 0.001\n\n'
+        "# the pump\n[[channel]]\nname = \"pump\"\ncolumn = \"pump_a\"\n"
+        'filter = { kind = "lowpass", cutoff_hz = 5.0, order = 2 }\n\n'
+        "[channel.band]   # a sub-table band\nlow = 2.0  # low threshold\nhigh = 4.0\n"
+    )
+    res, _ = tune.run(str(cfg), str(DEMO), "pump")
+    edit = write_config(str(cfg), [res])
+    text = cfg.read_text()
+    assert edit.changed == ["pump"] and text.endswith("\n")
+    assert "[channel.band]   # a sub-table band" in text and "  # low threshold" in text
+    band = tomllib.loads(text)["channel"][0]["band"]
+    # the suggestion, centre 3 A and its width, written as the file had it: low and high
+    assert band["low"] == pytest.approx(3.0 - res.suggestion.width / 2, abs=1e-9)
+    assert band["high"] == pytest.approx(3.0 + res.suggestion.width / 2, abs=1e-9)

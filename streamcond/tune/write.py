@@ -110,7 +110,13 @@ def _set(table: Any, key: str, text: str, after: str | None = None) -> bool:
                 if k not in new:
                     del old[k]
             for k, v in new.unwrap().items():
-                old[k] = v
+                item = tomlkit.item(v)
+                prev = old.get(k) if k in old else None
+                if prev is not None and hasattr(prev, "trivia"):
+                    # keep the key's comment and its line ending (the last key's newline)
+                    for attr in ("indent", "comment_ws", "comment", "trail"):
+                        setattr(item.trivia, attr, getattr(prev.trivia, attr))
+                old[k] = item
             return True
         table[key] = new
         return True
