@@ -378,3 +378,23 @@ def test_write_keeps_a_band_sub_table_its_comments_and_the_last_newline(tmp_path
     # the suggestion, centre 3 A and its width, written as the file had it: low and high
     assert band["low"] == pytest.approx(3.0 - res.suggestion.width / 2, abs=1e-9)
     assert band["high"] == pytest.approx(3.0 + res.suggestion.width / 2, abs=1e-9)
+
+
+def test_log_axis_ticks_are_readable_between_decades():
+    matplotlib = pytest.importorskip("matplotlib")
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from streamcond.tune.plot import readable_log_axis
+
+    fig, ax = plt.subplots()
+    ax.set_xscale("log")
+    ax.set_xlim(0.01, 1.0)
+    readable_log_axis(ax.xaxis)
+    fig.canvas.draw()
+    labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
+    plt.close(fig)
+    # the 1-2-5 steps of chart scales (common practice, no published source) as plain
+    # numbers, not only the decades as powers of ten
+    for want in ("0.01", "0.02", "0.05", "0.1", "0.2", "0.5", "1"):
+        assert want in labels, labels
