@@ -9,14 +9,18 @@ from __future__ import annotations
 
 import argparse
 import logging
+import os
 import sys
+from pathlib import Path
 from typing import Sequence
 
 from . import __version__
+from .errors import InputError, StreamcondError
 
 EXIT_OK = 0
 EXIT_DIFFERENT = 1
 EXIT_USAGE = 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention
 
 DESCRIPTION = """\
 Turn noisy sensor streams into clean, timed digital events: a software Schmitt trigger
@@ -30,15 +34,17 @@ examples:
   streamcond run -c /etc/streamcond/site.toml
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml --events -
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
-      --expect replay_data/orchard_pump.golden.jsonl
+      --expect replay_data/orchard_pump.golden.jsonl   # add --update-golden to renew it
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
   streamcond check -c site.toml --probe
   streamcond tune -c site.toml --port-seconds 180 --write
   streamcond watch -c site.toml
+  streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
+  streamcond compare config/site.toml new-band.toml 'recordings/*.csv' --jobs 2
 
-exit codes: 0 success, 1 --expect found differences or a --probe check failed,
-2 bad usage, config or input."""
+exit codes: 0 success, 1 --expect or compare found differences or a check --probe failed,
+2 bad usage, config or input, 130 interrupted (Ctrl-C)."""
 
 
 class _Formatter(argparse.RawDescriptionHelpFormatter):
@@ -86,10 +92,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "-v", "--verbose", action="count", default=0, help="more log detail on stderr (-vv for debug)"
     )
+    p.add_argument(
+        "-q", "--quiet", action="count", default=0,
+        help="less on stderr: only errors (replay: no closing summary line)",
+    )
+    # the same two flags after the command (`streamcond replay ... -v`); their own dests, so a
+    # subcommand's default never overwrites what was given before the command
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-v", "--verbose", dest="verbose_sub", action="count",
+                        default=argparse.SUPPRESS,
+                        help="more log detail on stderr (-vv for debug); also before the command")
+    common.add_argument("-q", "--quiet", dest="quiet_sub", action="count",
+                        default=argparse.SUPPRESS,
+                        help="only errors on stderr (replay: no closing summary line)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", title="commands")
 
     def cmd(name: str, help_: str, desc: str) -> argparse.ArgumentParser:
-        return sub.add_parser(name, help=help_, description=desc, formatter_class=_Formatter)
+        return sub.add_parser(name, help=help_, description=desc, formatter_class=_Formatter,
+                              parents=[common])
 
     d = cmd(
         "run",
@@ -110,6 +130,23 @@ def build_parser() -> argparse.ArgumentParser:
     rec.add_argument("-o", "--output", required=True, metavar="CAPTURE", help="capture file to write")
     rec.add_argument("--duration", type=_positive_float, metavar="S",
                      help="stop after S seconds (default: until SIGINT/SIGTERM)")
+    rec_mode = rec.add_mutually_exclusive_group()
+    rec_mode.add_argument("--force", action="store_true",
+                          help="replace CAPTURE if it exists (default: refuse)")
+    rec_mode.add_argument("--append", action="store_true",
+                          help="add to an existing text capture instead of refusing")
+
+    cv = cmd(
+        "convert",
+        "turn a CSV/kv/JSON recording or a capture into Parquet",
+        "Read a recording through the same parser as replay and write the rows it keeps as\n"
+        "Parquet (a column per source column, compressed row groups); replay, tune and compare\n"
+        "read it back and give the same records. Needs pyarrow (streamcond[parquet]).",
+    )
+    cv.add_argument("recording", metavar="RECORDING", help="recorded stream or capture")
+    cv.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    cv.add_argument("-o", "--output", required=True, metavar="PARQUET", help="Parquet file to write")
+    cv.add_argument("--force", action="store_true", help="replace PARQUET if it exists")
 
     r = cmd(
         "replay",
@@ -117,14 +154,21 @@ def build_parser() -> argparse.ArgumentParser:
         "Run a recording through the same parser and conditioning core as the live daemon and\n"
         "write the records (state, edges, gaps, and a closing summary) as JSON lines.",
     )
-    r.add_argument("recording", metavar="RECORDING", help="recorded stream (CSV/kv/JSON lines)")
+    r.add_argument("recording", metavar="RECORDING", nargs="*",
+                   help="recorded stream (CSV/kv/JSON lines, or a capture); default: source.path; "
+                   "several, a glob or @LIST: one summary line each")
     r.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     r.add_argument(
         "--events",
         metavar="PATH",
-        help="where to write the records: a file, or - for stdout (default: output.events; "
-        "with --expect, nothing unless given)",
+        help="where to write the records: a new file, or - for stdout (default: output.events; "
+        "with --expect, nothing unless given); never one of the inputs",
     )
+    w = r.add_mutually_exclusive_group()
+    w.add_argument("--force", action="store_true",
+                   help="replace an existing events file")
+    w.add_argument("--append", action="store_true",
+                   help="add the records to an existing events file")
     r.add_argument(
         "--chunk",
         type=_positive_int,
@@ -150,11 +194,22 @@ def build_parser() -> argparse.ArgumentParser:
         help="largest edge time difference that still matches, with --expect (default: 1e-6)",
     )
     r.add_argument(
-        "--no-progress", action="store_true", help="no progress line, even on a terminal"
+        "--compare-all",
+        action="store_true",
+        help="with --expect: compare faults, gaps and the summary's final totals too",
     )
     r.add_argument(
-        "-q", "--quiet", action="store_true", help="no closing summary line on stderr"
+        "--update-golden",
+        action="store_true",
+        help="with --expect: write this replay's records as the new golden file and print what "
+        "changed (the golden file is never written otherwise)",
     )
+    r.add_argument(
+        "--no-progress", action="store_true", help="no progress line, even on a terminal"
+    )
+    from .compare import add_executor_arguments
+
+    add_executor_arguments(r, _positive_int)  # for several recordings
 
     t = cmd(
         "tune",
@@ -192,6 +247,21 @@ def build_parser() -> argparse.ArgumentParser:
         help="acceptable false edges per hour from noise alone, by Rice's formula for a signal "
         "resting at the band centre (an upper bound); default 1/24: one a day",
     )
+
+    cmp = cmd(
+        "compare",
+        "which events would change on many recordings with another config",
+        "Replay every recording with CONFIG_A and with CONFIG_B and report, per recording and\n"
+        "channel, the edges with each, the edges that moved beyond the tolerance, went missing\n"
+        "or were added (A is the reference; the largest move in seconds), and the chatter with\n"
+        "each config (raw crossings of the band centre, and their ratio to the edges, over the\n"
+        "stats windows). One task per recording, in local processes (--jobs) or on a Dask\n"
+        "cluster (--scheduler).\n\n"
+        "exit codes: 0 nothing changed beyond --threshold, 1 something did, 2 bad input.",
+    )
+    from .compare import add_arguments as add_compare_arguments
+
+    add_compare_arguments(cmp)
 
     c = cmd(
         "check",
@@ -244,6 +314,11 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--interval", type=_positive_float, metavar="S",
                    help="seconds between text blocks in plain mode (default: 2)")
 
+    from .circuit.cli import DESCRIPTION as CIRCUIT_DESCRIPTION, HELP as CIRCUIT_HELP
+    from .circuit.cli import add_arguments as circuit_arguments
+
+    circuit_arguments(cmd("circuit", CIRCUIT_HELP, CIRCUIT_DESCRIPTION))
+
     b = cmd(
         "bench",
         "measure throughput on this machine",
@@ -268,7 +343,7 @@ def build_parser() -> argparse.ArgumentParser:
 def _setup_logging(verbose: int, command: str | None = None) -> None:
     # the daemon logs its life cycle at INFO (journald collects stderr); the tools are quiet
     base = logging.INFO if command in ("run", "record") else logging.WARNING
-    level = base - 10 * min(verbose, 2)
+    level = base - 10 * min(verbose, 2) if verbose >= 0 else logging.ERROR
     fmt = "streamcond: %(levelname)s: %(message)s"
     if verbose >= 2:  # debugging: times in ms since start (journald stamps the normal lines)
         fmt = "streamcond: %(relativeCreated)9.1f %(levelname)s %(name)s: %(message)s"
@@ -282,17 +357,21 @@ def _fail(messages: Sequence[str]) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    from .errors import StreamcondError
-
     parser = build_parser()
     args = parser.parse_args(argv)
-    _setup_logging(args.verbose, args.command)
+    args.verbose += getattr(args, "verbose_sub", 0)
+    args.quiet += getattr(args, "quiet_sub", 0)
+    _setup_logging(args.verbose - args.quiet, args.command)
     if args.command is None:
         parser.print_help()
         return EXIT_USAGE
     try:
         if args.command == "replay":
             return _replay(args)
+        if args.command == "compare":
+            from .compare import main as compare_main
+
+            return compare_main(args)
         if args.command == "run":
             from .daemon import run
 
@@ -301,6 +380,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .record import main as record_main
 
             return record_main(args)
+        if args.command == "convert":
+            from .convert import main as convert_main
+
+            return convert_main(args)
         if args.command == "check":
             return _check(args)
         if args.command == "tune":
@@ -315,6 +398,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .watch import main as watch_main
 
             return watch_main(args)
+        if args.command == "circuit":
+            from .circuit.cli import main as circuit_main
+
+            return circuit_main(args)
         if args.command == "bench":
             from .bench import main as bench_main
 
@@ -322,7 +409,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except StreamcondError as e:
         return _fail(e.messages)
     except KeyboardInterrupt:
-        return 130
+        return EXIT_INTERRUPTED
     except BrokenPipeError:
         # output piped into `head` and closed early: not an error of ours
         try:
@@ -336,21 +423,57 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _replay(args: argparse.Namespace) -> int:
     from .config import load_config
-    from .golden import compare, edges_of, load_edges
+    from .batch import is_many
+    from .golden import compare, compare_other, edges_of, load_records, write_golden
+    from .io.eventlog import EventLog, check_output
     from .progress import Progress
-    from .replay import JsonlWriter, run_replay
+    from .replay import ReplayInterrupted, run_replay
 
+    if (args.update_golden or args.compare_all) and not args.expect:
+        flag = "--update-golden" if args.update_golden else "--compare-all"
+        raise InputError(f"{flag} needs --expect GOLDEN")
+    if is_many(args.recording):  # several recordings: one summary line each (compare.py)
+        from .compare import replay_many
+
+        return replay_many(args)
+    args.recording = args.recording[0] if args.recording else None
     cfg = load_config(args.config)
-    expected = load_edges(args.expect) if args.expect else None
+    if args.recording is None:
+        if not cfg.source.path:
+            raise InputError("Give a RECORDING, or set source.path in the config")
+        args.recording = cfg.source.path  # relative to the current directory, like RECORDING
+    rec = Path(args.recording)
+    if not rec.exists():  # before any output is opened
+        raise InputError(f"The recording {args.recording!r} does not exist")
+    if rec.is_dir():
+        raise InputError(f"The recording {args.recording!r} is a directory, not a file")
+    inputs = [("recording", args.recording), ("config", args.config)]
+    if args.expect:
+        inputs.append(("golden file being compared", args.expect))
+    expected = None
+    if args.expect and args.update_golden:
+        # the golden file is an output of this run: it may be new, but not one of the others
+        check_output(args.expect, mode="replace", inputs=inputs[:2], what="golden file")
+        expected = load_records(args.expect) if Path(args.expect).exists() else []
+    elif args.expect:
+        expected = load_records(args.expect)
     target = args.events if args.events is not None else (None if args.expect else cfg.output.events)
-    import os
-
+    mode = "append" if args.append else ("replace" if args.force else "new")
+    rot = cfg.output.rotate if args.events is None else None
+    # opened now: an unwritable or refused path is reported before any work starts
+    writer = EventLog(
+        target, flush_each=args.speed is not None, mode=mode, inputs=inputs,
+        max_bytes=rot.max_bytes if rot else None, max_age_s=rot.max_age_s if rot else None,
+        keep=rot.keep if rot else 5,
+    )
     try:
         size = os.path.getsize(args.recording)
     except OSError:
         size = 0
-    progress = Progress(size, enabled=False if args.no_progress else None)
-    writer = JsonlWriter(target, flush_each=args.speed is not None)
+    # no progress line between records printed on the same terminal
+    on_screen = target == "-" and sys.stdout.isatty()
+    progress = Progress(size, enabled=False if (args.no_progress or on_screen) else None)
+    ok = False
     try:
         res = run_replay(
             cfg,
@@ -361,21 +484,53 @@ def _replay(args: argparse.Namespace) -> int:
             keep_records=expected is not None,
             progress=progress,
         )
-    finally:
+        ok = True
+    except ReplayInterrupted as e:
+        ok = True
         progress.close()
         writer.close()
+        where = f" (the events file {target!r} ends with an \"interrupted\" record)" if (
+            target and target != "-") else ""
+        print(f"interrupted at t = {e.t:.3f} s after {e.rows:,} rows{where}.", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        progress.close()
+        if ok:
+            writer.close()
+        else:
+            writer.abort()
     if not args.quiet:
         print(summary_line(res.summary), file=sys.stderr)
+        if writer.path is not None:  # say what was written where
+            print(f"{writer.written:,} records written to {target} ({writer.how}"
+                  + (f", {writer.rotations} rotation(s)" if writer.rotations else "") + ").",
+                  file=sys.stderr)
     if expected is None:
         return EXIT_OK
-    diff = compare(expected, edges_of(res.records), args.tolerance)
+    diff = compare(edges_of(expected), edges_of(res.records), args.tolerance)
+    if args.compare_all or args.update_golden:
+        diff += compare_other(expected, res.records, args.tolerance)
+    if args.update_golden:
+        write_golden(args.expect, res.records)
+        n = sum(1 for r in res.records if r.get("kind") == "edge")
+        if not expected:
+            print(f"wrote the new golden file {args.expect} ({n} edges).", file=sys.stderr)
+        elif diff:
+            print(f"updated {args.expect}; what changed:", file=sys.stderr)
+            for line in diff:
+                print(line, file=sys.stderr)
+        else:
+            print(f"updated {args.expect}: the edges, faults, gaps and totals are unchanged "
+                  f"({n} edges).", file=sys.stderr)
+        return EXIT_OK
     if diff:
         print("replay differs from " + args.expect + ":", file=sys.stderr)
         for line in diff:
             print(line, file=sys.stderr)
         return EXIT_DIFFERENT
     n = sum(1 for r in res.records if r.get("kind") == "edge")
-    print(f"replay matches {args.expect}: {n} edges agree within {args.tolerance:g} s.",
+    what = "edges, faults, gaps and totals" if args.compare_all else "edges"
+    print(f"replay matches {args.expect}: {n} {what} agree within {args.tolerance:g} s.",
           file=sys.stderr)
     return EXIT_OK
 

@@ -172,6 +172,37 @@ class ChannelConditioner:
                     out.append((k, RANK_MEASURE, m))
         return out
 
+    def finish(self, t_last: float) -> list[dict[str, Any]]:
+        """End of stream at sample time ``t_last``: the current window's stats and measure
+        records, covering the data up to one sample period past ``t_last``, marked partial."""
+        if self.stats.window is None:
+            return []
+        t0, t1 = self.stats.window_bounds()
+        t_end = min(t1, t_last + self.period)
+        fault_s = self.stats.fault_s
+        rec = self.stats.close_partial(t_end, self.band.low, self.band.high)
+        if rec is None:
+            return []
+        out = [rec]
+        if self.measure is not None:
+            lv = self.dwell.level
+            m = self.measure.close(t0, t_end, self.output_level(lv) if lv in (0, 1) else -1, fault_s)
+            if m is not None:
+                m["partial"] = True
+                out.append(m)
+        return out
+
+    def totals(self) -> dict[str, Any]:
+        """This channel's final totals: edges of this run, and the totalizer of a count measure."""
+        out: dict[str, Any] = {"edges": self.edges}
+        m = self.measure
+        if m is not None and m.spec.count:
+            out["total"] = m.total
+            if m.spec.pulses_per_unit is not None:
+                out["total_units"] = m.total / m.spec.pulses_per_unit
+                out["quantity_unit"] = m.spec.quantity_unit
+        return out
+
     def _fault_change(self, k: int, t: float, value: float, starts: bool) -> Tagged:
         lo, hi = self.fault_limits  # type: ignore[misc]
         st = self.dwell
@@ -182,12 +213,10 @@ class ChannelConditioner:
             st.prev_t = st.prev_x = float("nan")
             st.pend_class = -1
             why = f"at or below {lo:g}" if value <= lo else f"at or above {hi:g}"
-            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "start",
-                   "value": value, "reason": f"raw value {why}: a sensor fault, not a level"}
+            rec = records.fault_start(self.name, t, value, f"raw value {why}: a sensor fault, not a level")
         else:
             self.in_fault = False
-            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "end",
-                   "value": value, "duration_s": t - self.fault_t0}
+            rec = records.fault_end(self.name, t, value, t - self.fault_t0)
         return (k, RANK_FAULT, rec)
 
     def _apply_noise(self, est: tuple[float, float], y: np.ndarray, k: int) -> None:

@@ -116,6 +116,19 @@ class ChannelStats:
         self._reset_counts()
         return rec
 
+    def close_partial(self, t_end: float, low: float, high: float) -> dict[str, Any] | None:
+        """End of the stream inside the current window: its record so far, ``t_end`` the end of
+        the data, marked ``partial``; the next sample starts a window afresh."""
+        if self.window is None:
+            return None
+        rec = self._record(low, high) if (self.samples or self.fault_samples) else None
+        if rec is not None:
+            rec["t_end"] = t_end
+            rec["partial"] = True
+        self.window = None
+        self._reset_counts()
+        return rec
+
     def _record(self, low: float, high: float) -> dict[str, Any]:
         k = self.window
         half = (high - low) / 2.0
@@ -125,25 +138,24 @@ class ChannelStats:
             rate = nu0 * math.exp(-(half * half) / (2.0 * sig * sig)) * 3600.0
         else:
             rate = math.nan
-        return {
-            "kind": records.STATS,
-            "channel": self.channel,
-            "t": k * self.interval,
-            "t_end": (k + 1) * self.interval,
-            "samples": self.samples,
-            "raw_crossings": self.raw,
-            "edges": self.edges,
-            "suppression_ratio": (self.raw / self.edges) if self.edges else None,
-            "min_edge_spacing_s": self.min_spacing if math.isfinite(self.min_spacing) else None,
-            "noise_sigma": sig,
-            "nu0_hz": nu0,
-            "band_low": low,
-            "band_high": high,
-            "margin_sigma": margin,
-            "predicted_false_rate_per_hour": rate,
-            "chattering": self.chattering,
-            "fault_s": self.fault_s,
-        }
+        return records.stats(
+            self.channel,
+            k * self.interval,
+            (k + 1) * self.interval,
+            samples=self.samples,
+            raw_crossings=self.raw,
+            edges=self.edges,
+            suppression_ratio=(self.raw / self.edges) if self.edges else None,
+            min_edge_spacing_s=self.min_spacing if math.isfinite(self.min_spacing) else None,
+            noise_sigma=sig,
+            nu0_hz=nu0,
+            band_low=low,
+            band_high=high,
+            margin_sigma=margin,
+            predicted_false_rate_per_hour=rate,
+            chattering=self.chattering,
+            fault_s=self.fault_s,
+        )
 
     # -- accumulation -------------------------------------------------------------------------
     def add_samples(self, v: np.ndarray) -> None:
