@@ -19,7 +19,7 @@ def parse_table(block: str) -> dict[str, dict[str, str]]:
     lines = block.splitlines()
     head_i = next(i for i, ln in enumerate(lines) if ln.strip().startswith("channel "))
     head = lines[head_i]
-    names = ["channel", "value", "band", "level", "σ̂", "margin σ̂", "edges/min", "age",
+    names = ["channel", "edge value", "band", "level", "σ̂", "margin σ̂", "edges/min", "age",
              "chatter", "trace vs band"]
     starts = [head.index(n) for n in names] + [10_000]
     out = {}

@@ -75,6 +75,9 @@ class Snapshot:
     spool: str
     rows: list[Row]
     notes: list[str]
+    #: the value column's heading: over MQTT the value is the one the last edge (or the
+    #: retained state) carried, not the latest sample
+    value_label: str = "value"
 
 
 def _num(x: Any) -> float | None:
@@ -294,7 +297,8 @@ class WatchModel:
             spool = "—"
         else:
             source, broker, spool = self._from_health(now)
-        return Snapshot(title, source, broker, spool, rows, list(self.notes))
+        label = "value" if self.mode == "port" else "edge value"
+        return Snapshot(title, source, broker, spool, rows, list(self.notes), label)
 
     def _from_health(self, now: float) -> tuple[str, str, str]:
         mq = self.cfg.output.mqtt

@@ -14,13 +14,17 @@ COLUMNS = ["channel", "value", "band", "level", "σ̂", "margin σ̂", "edges/mi
 _ZONE_STYLE = {"^": "green", "-": "yellow", "v": "cyan", " ": ""}
 
 
+def _columns(s: Snapshot) -> list[str]:
+    return [s.value_label if c == "value" else c for c in COLUMNS]
+
+
 def plain(s: Snapshot, clock: str = "") -> str:
     """A text block: header lines and one aligned line per channel."""
     head = [f"{s.title}{('  ' + clock) if clock else ''}",
             f"  source: {s.source}",
             f"  broker: {s.broker}",
             f"  spool:  {s.spool}"]
-    cells = [COLUMNS]
+    cells = [_columns(s)]
     for r in s.rows:
         chatter = "CHATTER" if r.chatter else ("pulses" if r.counting else "no")
         # the trace's zones as letters: ^ above the band, - inside, v below
@@ -54,8 +58,8 @@ def rich_view(s: Snapshot, clock: str = "") -> Any:
         header.append("\nnote    ", style="bold")
         header.append(n, style="magenta")
     table = Table(expand=False, header_style="bold")
-    for c in COLUMNS:
-        table.add_column(c, justify="right" if c in ("value", "σ̂", "margin σ̂", "edges/min", "age") else "left",
+    for c in _columns(s):
+        table.add_column(c, justify="right" if c in ("value", "edge value", "σ̂", "margin σ̂", "edges/min", "age") else "left",
                          no_wrap=True)
     for r in s.rows:
         trace = Text()
