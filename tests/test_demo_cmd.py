@@ -58,7 +58,7 @@ def test_demo_runs_the_daemon_live_and_ends_cleanly():
     assert "pulses" in rows["flow"]  # a counting channel: no chatter flag
     # the pump started and stopped: two edges over MQTT within the minute, level low again
     assert table["pump"]["level"] == "low" and table["pump"]["edges/min"] == "2"
-    assert table["tank_high"]["band"] == "2.36 – 2.44"
+    assert table["tank_high"]["band"] == "2.357 – 2.442"
     # the daemon stopped cleanly (SIGTERM → exit 0) and had written records
     assert "demo ended" in r.stderr and "exited with 0" in r.stderr
     n = int(r.stderr.split("the daemon wrote ", 1)[1].split(" records", 1)[0].replace(",", ""))
