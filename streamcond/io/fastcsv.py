@@ -67,6 +67,21 @@ def choose(name: str | None = None) -> str:
     return want
 
 
+def arrow_to_numpy(arr, dtype=np.float64) -> np.ndarray:
+    """A pyarrow Array/ChunkedArray of fixed-width values without nulls as a numpy array, read
+    from its data buffers. (``to_numpy()`` imports pandas when pandas is installed: measured
+    0.2 s on the first call, a tenth of a whole replay; the buffers take 1 ms.)"""
+    chunks = arr.chunks if hasattr(arr, "chunks") else [arr]
+    size = np.dtype(dtype).itemsize
+    parts = [
+        np.frombuffer(c.buffers()[1], dtype, count=len(c), offset=c.offset * size)
+        for c in chunks if len(c)
+    ]
+    if not parts:
+        return np.empty(0, dtype)
+    return parts[0] if len(parts) == 1 else np.concatenate(parts)
+
+
 def loadtxt_block(block: bytes, ncols: int) -> np.ndarray | None:
     """numpy's C parser on a block of lines; None when any line does not parse."""
     try:
@@ -114,7 +129,7 @@ class ArrowBlockReader:
         for i, col in enumerate(tbl.columns):
             if col.null_count:
                 return None
-            out[:, i] = col.to_numpy()
+            out[:, i] = arrow_to_numpy(col)
         return out
 
 
