@@ -40,12 +40,16 @@ def _arrow():
     return pa, pacsv
 
 
+def _have_arrow() -> bool:
+    """pyarrow installed? Asked without importing it (the daemon never needs it)."""
+    import importlib.util
+
+    return importlib.util.find_spec("pyarrow") is not None
+
+
 def available() -> list[str]:
-    """The block readers importable here, the default first."""
-    out = ["numpy"]
-    if _arrow() is not None:
-        out.append("pyarrow")
-    return out
+    """The block readers installed here, the default first."""
+    return ["numpy", "pyarrow"] if _have_arrow() else ["numpy"]
 
 
 #: Blocks at least this large go to pyarrow under "auto". Smaller ones (the live daemon's few
@@ -59,7 +63,7 @@ def choose(name: str | None = None) -> str:
     installed, numpy otherwise. The readers agree bit for bit, so a per-block choice is safe."""
     want = name or os.environ.get(ENV) or "auto"
     if want == "auto":
-        return "auto" if _arrow() is not None else "numpy"
+        return "auto" if _have_arrow() else "numpy"
     if want not in ("numpy", "pyarrow"):
         raise ValueError(f"unknown CSV reader {want!r} (numpy or pyarrow)")
     if want == "pyarrow" and _arrow() is None:
