@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import glob
-import logging
 import os
 import socket
 from contextlib import contextmanager
@@ -24,8 +23,6 @@ from .config import Config
 from .errors import InputError, StreamcondError
 from .golden import Edge, diff_edges
 from .io.recording import DEFAULT_BLOCK_BYTES
-
-log = logging.getLogger(__name__)
 
 _GLOB_CHARS = set("*?[")
 
@@ -79,7 +76,10 @@ def expand_recordings(args: Sequence[str]) -> list[str]:
             add(arg, None, "")
     if problems:
         raise InputError([p[0].upper() + p[1:] for p in problems])
-    return list(dict.fromkeys(out))
+    seen: dict[str, str] = {}  # normalised path -> the first spelling given
+    for path in out:
+        seen.setdefault(os.path.normpath(path), path)
+    return list(seen.values())
 
 
 # --------------------------------------------------------------------------- executors

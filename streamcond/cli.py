@@ -29,18 +29,22 @@ The same pipeline conditions a live serial stream and replays recordings."""
 
 EPILOG = """\
 examples:
+  streamcond demo --duration 20
   streamcond check -c config/orchard_pump.toml
   streamcond run -c /etc/streamcond/site.toml
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml --events -
   streamcond replay replay_data/orchard_pump.csv -c config/orchard_pump.toml \\
       --expect replay_data/orchard_pump.golden.jsonl   # add --update-golden to renew it
   streamcond tune replay_data/orchard_pump.csv -c config/orchard_pump.toml --channel tank_high
+  streamcond check -c site.toml --probe
+  streamcond tune -c site.toml --port-seconds 180 --write
+  streamcond watch -c site.toml
   streamcond circuit --low 2.0 --high 2.1 --circuit single-supply --supply 3.3
   streamcond bench
   streamcond compare config/site.toml new-band.toml 'recordings/*.csv' --jobs 2
 
-exit codes: 0 success, 1 --expect or compare found differences, 2 bad usage, config or input,
-130 interrupted (Ctrl-C)."""
+exit codes: 0 success, 1 --expect or compare found differences or a check --probe failed,
+2 bad usage, config or input, 130 interrupted (Ctrl-C)."""
 
 
 class _Formatter(argparse.RawDescriptionHelpFormatter):
@@ -209,17 +213,32 @@ def build_parser() -> argparse.ArgumentParser:
 
     t = cmd(
         "tune",
-        "measure a channel's noise and suggest a band",
-        "Read a recording through the same parser and prefilter as replay, measure the channel's\n"
-        "noise (robust sigma and zero up-crossing rate), sweep band widths, find the plateau of\n"
-        "widths over which the edge count is stable, and suggest a width that lies on it and meets\n"
-        "a target false-edge rate (Rice's formula).",
+        "measure each channel's noise and suggest a band",
+        "Read a recording (or the live port, --port-seconds) through the same parser and\n"
+        "prefilter as replay, and for each channel: measure the noise (robust sigma and zero\n"
+        "up-crossing rate), sweep band widths, find the plateau of widths over which the edge\n"
+        "count is stable, and suggest a width that lies on it and meets a target false-edge rate\n"
+        "(Rice's formula). A pulse channel (a signal jumping between two levels, e.g. a paddle\n"
+        "wheel) gets a band between its levels, a dwell sized from the measured bounce, and its\n"
+        "pulse rate. --write puts the suggestion into the config.",
     )
-    t.add_argument("recording", metavar="RECORDING", help="recorded stream (CSV/kv/JSON lines)")
+    t.add_argument("recording", metavar="RECORDING", nargs="?",
+                   help="recorded stream (CSV/kv/JSON lines, or a capture of `record`)")
     t.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
-    t.add_argument("--channel", required=True, metavar="NAME", help="the channel to tune")
-    t.add_argument("--json", action="store_true", help="machine-readable output")
-    t.add_argument("--plot", metavar="PNG", help="write a picture: trace, band, edges, sweep")
+    t.add_argument("--channel", metavar="NAME", help="the channel to tune (default: every channel)")
+    t.add_argument("--port-seconds", type=_positive_float, metavar="N",
+                   help="instead of a recording, read the config's serial port for N seconds "
+                   "(stop the daemon first: two readers would share the port's lines)")
+    t.add_argument("--pulse", action=argparse.BooleanOptionalAction, default=None,
+                   help="tune as a pulse channel (--no-pulse: as a level channel); default: "
+                   "decided from the signal")
+    t.add_argument("--json", action="store_true",
+                   help="machine-readable output (every channel: {\"channels\": {name: ...}})")
+    t.add_argument("--plot", metavar="PNG",
+                   help="write a picture per channel (PNG-channel.png when several)")
+    t.add_argument("--write", action="store_true",
+                   help="put the suggested band (and dwell) into CONFIG in place, keeping its "
+                   "comments and layout, and print the change as a diff")
     t.add_argument(
         "--target-rate",
         type=_positive_float,
@@ -251,6 +270,49 @@ def build_parser() -> argparse.ArgumentParser:
     )
     c.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
     c.add_argument("--json", action="store_true", help="print the resolved settings as JSON")
+    c.add_argument("--probe", action="store_true",
+                   help="try everything the daemon needs (port, first lines, sample rate, broker, "
+                   "TLS files, spool directory): a line each; exit 0 only when all pass, else 1")
+    c.add_argument("--probe-seconds", type=_positive_float, default=None, metavar="S",
+                   help="how long --probe listens to the port (default: 3)")
+
+    dm = cmd(
+        "demo",
+        "the daemon live on a simulated device and an embedded broker, with the live view",
+        "A simulated device (a pseudo-terminal fed the demo recording in real time), an embedded\n"
+        "MQTT broker on a free loopback port (amqtt: pip install 'streamcond[demo]'), the daemon\n"
+        "on them, and the live view of what it publishes — serial in, clean events on MQTT, with\n"
+        "no hardware and no broker installed. Ends after --duration or at Ctrl-C.",
+    )
+    dm.add_argument("--duration", type=_positive_float, metavar="S",
+                    help="stop after S seconds (default: until Ctrl-C)")
+    dm.add_argument("--speed", type=_positive_float, metavar="X",
+                    help="play the recording X times faster than real time (default: 1)")
+    dm.add_argument("--plain", action="store_true", help="plain text view even on a terminal")
+    dm.add_argument("--interval", type=_positive_float, metavar="S",
+                    help="seconds between text blocks in plain mode (default: 2)")
+
+    w = cmd(
+        "watch",
+        "live view of a station: each channel's value, band, level, noise and edges",
+        "A live view for commissioning. Per channel: value, band, level, noise sigma and the\n"
+        "margin in sigmas, edges in the last minute, age of the value, chatter flag and a small\n"
+        "trace against the band; for the station: source rate, bad lines, spool depth and the\n"
+        "broker state. Reads what the daemon publishes over MQTT (its edge, state and stats\n"
+        "topics and the retained health record); with --port, when no daemon is running, reads\n"
+        "the serial port and runs the pipeline itself. Refreshed in place on a terminal, plain\n"
+        "text otherwise. Ctrl-C ends it.",
+    )
+    w.add_argument("-c", "--config", required=True, metavar="CONFIG", help="TOML config file")
+    w.add_argument("--port", action="store_true",
+                   help="read the config's serial port and run the pipeline here (only when no "
+                   "daemon has the port open)")
+    w.add_argument("--duration", type=_positive_float, metavar="S",
+                   help="stop after S seconds (default: until Ctrl-C)")
+    w.add_argument("--plain", action="store_true",
+                   help="plain text blocks even on a terminal (the default for a pipe or file)")
+    w.add_argument("--interval", type=_positive_float, metavar="S",
+                   help="seconds between text blocks in plain mode (default: 2)")
 
     from .circuit.cli import DESCRIPTION as CIRCUIT_DESCRIPTION, HELP as CIRCUIT_HELP
     from .circuit.cli import add_arguments as circuit_arguments
@@ -329,6 +391,14 @@ def main(argv: Sequence[str] | None = None) -> int:
             from .tune import main as tune_main
 
             return tune_main(args)
+        if args.command == "demo":
+            from .demo import main as demo_main
+
+            return demo_main(args)
+        if args.command == "watch":
+            from .watch import main as watch_main
+
+            return watch_main(args)
         if args.command == "circuit":
             from .circuit.cli import main as circuit_main
 
@@ -480,6 +550,10 @@ def summary_line(s: dict) -> str:
 
 
 def _check(args: argparse.Namespace) -> int:
+    if getattr(args, "probe", False):
+        from .probe import main as probe_main
+
+        return probe_main(args)
     from .config import load_config
     from .describe import describe_config
 

@@ -178,8 +178,8 @@ class AdaptiveBand(_Model):
     window_s: float = Field(5.0, gt=0)
     min_width: float = Field(0.0, ge=0)
     max_width: float | None = Field(None, gt=0)
-    #: Width in force before the first noise estimate (warm-up); default: min_width, or if that
-    #: is 0, no decisions are made until the first estimate.
+    #: Width in force before the first reliable noise estimate (warm-up); without it no
+    #: decisions are made until then (min_width is a clamp, not a guess for the start).
     initial_width: float | None = Field(None, gt=0)
 
     @model_validator(mode="after")

@@ -173,7 +173,7 @@ def test_threshold_count_and_percentage(cli):
 
 def test_table_csv_and_list_file(cli, fleet, tmp_path):
     lst = fleet / "list.txt"
-    lst.write_text("# the stations of March\nmonth/st2.csv\nmonth/st1.csv  # again below\nmonth/*.csv\n")
+    lst.write_text("# the stations of March\nmonth/st2.csv\n./month/st1.csv  # again below\nmonth/*.csv\n")
     target = tmp_path / "what-if.csv"
     code, out, err = cli("compare", "a.toml", "b.toml", "@list.txt", "--csv", str(target),
                          "--tolerance", "0.01")
@@ -368,3 +368,25 @@ def test_progress_reaches_the_end_and_odd_file_names(fleet, tmp_path):
         out = run_tasks(ex, compare_recording, recs, a, b, 0.01, progress=progress)
     assert [o.recording for o in out] == recs and not any(o.errors for o in out)
     assert re.match(r"\[#+\] 100.0%", stream.getvalue().rstrip().split("\r")[-1])
+
+
+def test_readme_what_if_example_is_what_the_commands_print(tmp_path, monkeypatch, capsys):
+    # the README's example, run as written: three more takes of the demo (tools/make_demo.py),
+    # the config edited by its sed line, then compare; the table must be the one shown
+    root = Path(__file__).resolve().parent.parent
+    readme = (root / "README.md").read_text(encoding="utf-8")
+    section = readme.split("## What if: `streamcond compare`")[1].split("\n## ")[0]
+    script, shown = re.findall(r"```sh\n(.*?)```\n\n```\n(.*?)```", section, re.S)[0]
+    for sub in ("replay_data", "config", "tools"):
+        (tmp_path / sub).symlink_to(root / sub)
+    setup = script.split("streamcond compare")[0]
+    r = subprocess.run(["bash", "-c", setup.replace("python ", f"{sys.executable} ")],
+                       cwd=tmp_path, capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    argv = script.split("streamcond compare")[1].replace("\\\n", " ").split()
+    argv = [a.strip("'") for a in argv if a != "--csv" and a != "what-if.csv"]
+    from streamcond.cli import main
+
+    monkeypatch.chdir(tmp_path)
+    assert main(["compare", *argv]) == 1
+    assert capsys.readouterr().out == shown

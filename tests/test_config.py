@@ -132,13 +132,13 @@ def test_unreadable_config_exit_2(tmp_path, text, fragment):
 def test_check_prints_resolved_settings():
     r = run_cli("check", "-c", "config/orchard_pump.toml")
     assert r.returncode == 0, r.stderr
-    assert "low = 2.36" in r.stdout and "high = 2.44" in r.stdout
+    assert "low = 2.3575" in r.stdout and "high = 2.4425" in r.stdout
     assert "delay 4 samples" in r.stdout  # median of 9: (N-1)/2, a comment (derived)
     r = run_cli("check", "-c", "config/orchard_pump.toml", "--json")
     import json
 
     d = json.loads(r.stdout)
-    assert d["channel"][0]["band"]["width"] == pytest.approx(0.08)
+    assert d["channel"][0]["band"]["width"] == pytest.approx(0.085)
     assert d["channel"][0]["filter"]["delay_samples"] == 4.0
 
 

@@ -99,12 +99,15 @@ def test_update_option_rewrites_the_golden(tmp_path):
     write_case(tmp_path, "broken", "golden.jsonl")
     write_case(tmp_path, "fresh", "new/fresh.jsonl")  # no golden yet
     (tmp_path / "new").mkdir()
+    write_case(tmp_path, "empty", "empty.jsonl")  # an empty golden: an input error, unless updating
+    (tmp_path / "empty.jsonl").write_text("")
     r = pytest_run(tmp_path, ".", "--streamcond-update-golden")
     assert r.returncode == 0, r.stdout + r.stderr
     assert "golden files rewritten" in r.stdout and "golden.jsonl (3553 edges)" in r.stdout
     assert "fresh.jsonl (3553 edges)" in r.stdout
     assert load_edges(tmp_path / "golden.jsonl") == load_edges(GOLDEN)
     assert load_edges(tmp_path / "new" / "fresh.jsonl") == load_edges(GOLDEN)
+    assert load_edges(tmp_path / "empty.jsonl") == load_edges(GOLDEN)
     assert not list(tmp_path.glob("*.tmp"))
     r = pytest_run(tmp_path, ".")
     assert r.returncode == 0, r.stdout + r.stderr

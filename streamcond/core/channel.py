@@ -77,7 +77,7 @@ class ChannelConditioner:
         self.rise_s = float(cfg.dwell.rise_s)
         self.fall_s = float(cfg.dwell.fall_s)
         self.dwell = DwellState()
-        self._pending_noise: tuple[float, float] | None = None
+        self._pending_noise: tuple[float, float, bool, str | None, float] | None = None
         self.fault_limits = cfg.fault.limits if cfg.fault is not None else None
         self.in_fault = False
         self.fault_t0 = float("nan")
@@ -131,14 +131,17 @@ class ChannelConditioner:
             # an estimate that completed on the previous block's last sample
             events.append((0, 2, self._pending_noise))
             self._pending_noise = None
-        idx, sig, nu0 = self.noise.process(yg)
-        if good is not None:
-            idx = good[idx]
-        for i, s_, n_ in zip(idx.tolist(), sig.tolist(), nu0.tolist()):
+        upd = self.noise.process(yg)
+        idx = upd.idx if good is None else good[upd.idx]
+        for i, s_, n_, r_, why, m_ in zip(
+            idx.tolist(), upd.sigma.tolist(), upd.nu0.tolist(), upd.reliable.tolist(),
+            upd.reason, upd.samples.tolist(),
+        ):
+            est = (s_, n_, bool(r_), why, m_ * self.period)
             if i + 1 < n:
-                events.append((i + 1, 2, (s_, n_)))  # the estimate includes sample i
+                events.append((i + 1, 2, est))  # the estimate includes sample i
             else:
-                self._pending_noise = (s_, n_)  # applies from the next block's first sample
+                self._pending_noise = est  # applies from the next block's first sample
         for j in self.stats.boundaries(t):
             events.append((j, 0, None))
         events.sort(key=lambda e: (e[0], e[1]))
@@ -219,10 +222,16 @@ class ChannelConditioner:
             rec = records.fault_end(self.name, t, value, t - self.fault_t0)
         return (k, RANK_FAULT, rec)
 
-    def _apply_noise(self, est: tuple[float, float], y: np.ndarray, k: int) -> None:
-        """A new noise estimate, in force from sample ``k`` of the block."""
-        sigma, nu0 = est
-        self.stats.noise(sigma, nu0)
+    def _apply_noise(
+        self, est: tuple[float, float, bool, str | None, float], y: np.ndarray, k: int
+    ) -> None:
+        """A new noise estimate, in force from sample ``k`` of the block. An estimate that is
+        not reliable moves no band: the band keeps its last reliable width (or, before the
+        first one, ``initial_width`` or no decision at all)."""
+        sigma, nu0, reliable, reason, window_s = est
+        self.stats.noise(sigma, nu0, reliable, reason, window_s)
+        if not reliable:
+            return
         last = y[k - 1] if k > 0 else self.dwell.prev_x
         self.band.propose(sigma, self.dwell.level, float(last))
 

@@ -185,6 +185,7 @@ class Pipeline:
             self.timebase = old.timebase
             self._held = old._held
         self.samples, self.gaps, self.last_t = old.samples, old.gaps, old.last_t
+        self.last_host_t = old.last_host_t
         self._restore = {k: v for k, v in old.snapshot().items()}
         names = {c.name for c in self.cfg.channel}
         self._adopt = {c.name: c for c in (old.channels or []) if c.name in names}
