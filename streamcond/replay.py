@@ -112,7 +112,9 @@ def run_replay(
     ``speed`` paces the replay by sample time (1.0 = real time, 10 = ten times faster).
     """
     from .core.pipeline import Pipeline
+    from .validate import validate
 
+    validate(cfg, files=False)  # a replay opens no MQTT files
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
 
     def new_pipeline(columns: list[str]) -> Pipeline:

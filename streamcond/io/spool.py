@@ -880,6 +880,15 @@ class Spool:
                 pass
 
 
+def spool_options(mq: Any) -> dict[str, Any]:
+    """:class:`Spool` keyword arguments from an ``[output.mqtt]`` config."""
+    return {
+        "max_records": mq.spool_max_records,
+        "sync": mq.spool_sync,
+        "sync_interval_s": mq.spool_sync_interval_ms / 1000.0,
+    }
+
+
 def _row(index: int, item: Any) -> tuple[str, bytes, int, int, str, int]:
     """Check one ``(topic, payload, qos, retain, kind)`` item; the row to insert."""
     try:
