@@ -44,10 +44,9 @@ def _sentence(cfg: Config, i: int, e: BaseException, fs: float, rate_from: str) 
         return (f"{where} cannot run at {fs:g} Hz ({rate_from}): its numbers go out of range "
                 f"({type(e).__name__}: {msg.rstrip('.')})")
     f = cfg.channel[i].filter
-    params = ", ".join(f"{k} = {v:g}" if isinstance(v, float) else f"{k} = {v!r}"
-                       for k, v in f.model_dump().items())
-    return (f"{where}.filter ({params}) cannot be built at {fs:g} Hz ({rate_from}): "
-            f"{msg.rstrip('.')}")
+    params = ", ".join(f"{k} = {v:g}" if isinstance(v, float) else f"{k} = {v}"
+                       for k, v in f.model_dump().items() if k != "kind")
+    return f"{where}.filter: {msg.rstrip('.')} ({f.kind}, {params}, at {fs:g} Hz, {rate_from})"
 
 
 def _window_problems(cfg: Config, fs: float, rate_from: str) -> list[str]:
