@@ -74,6 +74,7 @@ processes: the file is locked exclusively while it is open.
 
 from __future__ import annotations
 
+import errno
 import json
 import logging
 import os
@@ -264,9 +265,10 @@ class Spool:
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
         except OSError as e:
+            why = ("it is on a read-only file system" if e.errno == errno.EROFS
+                   else e.strerror or str(e))
             raise SpoolError(
-                f"The spool's directory {str(self.path.parent)!r} cannot be created: "
-                f"{e.strerror or e}"
+                f"The spool's directory {str(self.path.parent)!r} cannot be created: {why}"
             ) from None
         try:
             # isolation_level=None: transactions are begun and committed explicitly below.
@@ -360,6 +362,8 @@ class Spool:
         """A :class:`SpoolError` naming the path and, in words, what SQLite reported."""
         p = repr(str(self.path))
         name = _errname(e)
+        if name.startswith(("SQLITE_IOERR", "SQLITE_READONLY", "SQLITE_CANTOPEN")) and _read_only(self.path):
+            return SpoolError(f"The spool {p} could not be {doing}: it is on a read-only file system")
         if name == "SQLITE_NOTADB":
             return SpoolError(
                 f"The spool {p} is not an SQLite database ({e}); move it aside or point "
@@ -661,7 +665,7 @@ class Spool:
 
     def _warn(self, kind: str, n: int) -> None:
         bound = self.max_records if self._trouble is None else self.memory_max_records
-        where = "" if self._trouble is None else " in memory (the disk cannot be written)"
+        where = "" if self._trouble is None else " held in memory: the disk cannot be written"
         log.warning(
             "spool %s is full (%d records%s): dropped %d %r record(s) since the last warning "
             "about them, oldest first; %d dropped in total",
