@@ -271,16 +271,17 @@ class _QuietLog(logging.LoggerAdapter):
     the rest at DEBUG.
     """
 
-    def __init__(self, logger: logging.Logger, interval_s: float) -> None:
+    def __init__(self, logger: logging.Logger, interval_s: float, clock: Any = time.monotonic) -> None:
         super().__init__(logger, {})
         self.interval_s = interval_s
+        self._clock = clock
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
 
     def log(self, level: int, msg: Any, *args: Any, **kwargs: Any) -> None:
         if level >= logging.WARNING:
             key = str(msg)
-            now = time.monotonic()
+            now = self._clock()
             last = self._last.get(key)
             if last is not None and now - last < self.interval_s:
                 self._held[key] = self._held.get(key, 0) + 1

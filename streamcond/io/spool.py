@@ -774,11 +774,18 @@ class Spool:
             self._count -= max(0, removed)
 
     def _delete(self, conn: sqlite3.Connection, params: list[tuple[int]]) -> int:
+        # Runs of consecutive ids (a drained backlog is one run) are one range delete each.
+        runs: list[tuple[int, int]] = []
+        for (k,) in sorted(params):
+            if runs and k == runs[-1][1] + 1:
+                runs[-1] = (runs[-1][0], k)
+            else:
+                runs.append((k, k))
         if self.sync == "always":
             conn.execute("PRAGMA synchronous=NORMAL")
         try:
             conn.execute("BEGIN IMMEDIATE")
-            removed = conn.executemany("DELETE FROM queue WHERE id = ?", params).rowcount
+            removed = conn.executemany("DELETE FROM queue WHERE id BETWEEN ? AND ?", runs).rowcount
             conn.execute("COMMIT")
             return removed
         except BaseException:
