@@ -112,7 +112,8 @@ def test_spool_on_a_full_disk_holds_in_memory_counts_losses_and_recovers(small_d
 
 def test_the_wal_stays_bounded_so_max_records_is_what_fills(small_disk: Path) -> None:
     # 20,000 records through a spool bounded at 500 on a 512 KiB disk: the bound drops the
-    # oldest, the disk never fills (SQLite's log is checkpointed every 32 pages).
+    # oldest, the disk never fills (SQLite's log is checkpointed, near a full disk at every
+    # commit, so it never takes the headroom).
     sp = Spool(small_disk / "s.sqlite", max_records=500)
     lowest = free_bytes(small_disk)
     for n in range(0, 20_000, 4):
@@ -120,7 +121,7 @@ def test_the_wal_stays_bounded_so_max_records_is_what_fills(small_disk: Path) ->
         lowest = min(lowest, free_bytes(small_disk))
     assert sp.trouble is None and sp.disk_errors == 0
     assert len(sp) == 500 and sp.dropped == 19_500
-    assert lowest > 128 * 1024, lowest
+    assert lowest >= HEADROOM_BYTES // 2, lowest  # (a commit's pages may dip into the headroom)
     sp.close()
 
 

@@ -25,9 +25,9 @@ https://www.sqlite.org/wal.html):
   Acknowledgements alone are always committed with NORMAL (see :meth:`Spool.ack`): losing one to
   a power cut only re-sends a record, which QoS 1 permits anyway and consumers catch by ``seq``.
 - The WAL is bounded: checkpointed into the database every :data:`WAL_CHECKPOINT_PAGES` pages
-  (128 KiB; :data:`WAL_CHECKPOINT_PAGES_INTERVAL`, 1 MiB, with ``sync="interval"``) and cut
-  back to that size after each checkpoint, and near a full disk after every commit, so the
-  records (``max_records``), not the log, are what grows with a backlog.
+  (1 MiB) and cut back to that size after each checkpoint, and checkpointed and truncated
+  after every commit while the disk is nearly full (:data:`HEADROOM_BYTES`), so the records
+  (``max_records``), not the log, are what fills the disk.
 - ``locking_mode=EXCLUSIVE``: the file stays locked while the spool is open, so a second
   daemon pointed at the same spool is refused instead of sending the same records twice; as a
   side effect WAL needs no ``-shm`` shared-memory file. The price: other programs cannot read
@@ -102,21 +102,15 @@ PROTECTED_KINDS: frozenset[str] = frozenset({records.EDGE, records.GAP, records.
 WARN_INTERVAL_S = 60.0
 """At most one overflow (or disk-trouble) warning per record kind in this many seconds."""
 
-WAL_CHECKPOINT_PAGES = 32
-"""``PRAGMA wal_autocheckpoint``: copy the log into the database every this many pages (128 KiB
-at SQLite's default 4 KiB page; a batch of a few records writes about four pages). SQLite's
-default is 1000 (4 MiB), more than a small card's spare space, and a log whose new pages the
-database cannot grow to take once the disk is full can never be checkpointed. A checkpoint
-costs two fsyncs and writes the few hot pages once (https://www.sqlite.org/wal.html)."""
-
-WAL_CHECKPOINT_PAGES_INTERVAL = 256
-"""The same with ``sync="interval"`` (1 MiB): each checkpoint syncs the log and the database
-(two fsyncs), which at 32 pages would be most of the fsyncs that mode exists to save. Near a
-full disk both modes checkpoint after every commit (:data:`HEADROOM_BYTES`)."""
+WAL_CHECKPOINT_PAGES = 256
+"""``PRAGMA wal_autocheckpoint``: copy the log into the database every this many pages (1 MiB at
+SQLite's default 4 KiB page; storing an edge and acknowledging it writes about six pages).
+SQLite's default is 1000 (4 MiB). Each checkpoint costs two fsyncs and writes the few hot pages
+once (https://www.sqlite.org/wal.html), so a smaller log costs fsyncs on every system; on a
+small disk the log is kept far smaller by the rule of :data:`HEADROOM_BYTES` instead."""
 
 WAL_LIMIT_BYTES = WAL_CHECKPOINT_PAGES * 4096
-"""``PRAGMA journal_size_limit``: after a checkpoint the log file is cut back to this size
-(with ``sync="interval"``: :data:`WAL_CHECKPOINT_PAGES_INTERVAL` pages)."""
+"""``PRAGMA journal_size_limit``: after a checkpoint the log file is cut back to this size."""
 
 HEADROOM_BYTES = 64 * 1024
 """Free space the spool leaves on its file system. A checkpoint must grow the database by the
@@ -312,9 +306,8 @@ class Spool:
                 f"(journal mode stays {mode!r}); {where}"
             )
         conn.execute(f"PRAGMA synchronous={self._sync_pragma}")
-        pages = WAL_CHECKPOINT_PAGES if self.sync == "always" else WAL_CHECKPOINT_PAGES_INTERVAL
-        conn.execute(f"PRAGMA wal_autocheckpoint={pages}")
-        conn.execute(f"PRAGMA journal_size_limit={pages * 4096}")
+        conn.execute(f"PRAGMA wal_autocheckpoint={WAL_CHECKPOINT_PAGES}")
+        conn.execute(f"PRAGMA journal_size_limit={WAL_LIMIT_BYTES}")
         conn.execute("BEGIN IMMEDIATE")  # takes the write lock now: a second daemon fails here
         try:
             tables = {
