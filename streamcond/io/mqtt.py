@@ -37,25 +37,36 @@ acknowledgements stream back while later messages are already on the wire.
 
 Ordering: MQTT 3.1.1 §4.6 (OASIS standard, 2014) has the broker forward the messages of one
 client on a topic in the order it received them, and one TCP connection delivers packets in
-order. The publisher writes PUBLISH packets in spool-id order (the publish coroutines are
-started as tasks in that order, and asyncio runs ready callbacks first-in first-out, so each
-reaches the underlying client's synchronous ``publish`` in order) and acknowledges in the
-spool only the *contiguous* prefix of completed messages. After a connection loss everything
-not acknowledged is sent again from the oldest un-acknowledged item, on a fresh session:
+order. The publisher hands spool items to the paho client's synchronous ``publish`` in
+spool-id order, so the PUBLISH packets go out in that order, and acknowledges in the spool
+only the *contiguous* prefix of completed messages. After a connection loss everything not
+acknowledged is sent again from the oldest un-acknowledged item, on a fresh session:
 delivery is at least once, so consumers drop duplicates by ``seq`` (edges) or ``t``.
 
-aiomqtt facts this relies on (aiomqtt 2.x, read from its ``Client.publish``): ``await
-client.publish(..., qos=1)`` returns only when the underlying paho client reports the
-message published, i.e. after the PUBACK (after the PUBCOMP for QoS 2, after the socket
-write for QoS 0); it waits at most ``timeout`` seconds (default: the client's ``timeout``)
-and raises :class:`aiomqtt.MqttError` on timeout. A publish pending when the connection
-drops is *not* failed by aiomqtt; the loss is seen through ``client.messages``, whose
-iteration raises :class:`aiomqtt.MqttError` on disconnection, so the publisher watches that.
-The paho client's own in-flight limit (``max_inflight_messages``, default 20) is set to the
-window so paho does not hold messages back on its own.
+Catching up: after an outage the spool may hold tens of thousands of records; the issue's
+goal is the backlog delivered within about a second of the broker's return. The cost is per
+message, so (1) spool items go to paho's ``publish`` directly, one ``on_publish`` callback
+marking them done — not one coroutine, task and timeout per message through aiomqtt's
+``publish``; (2) paho's own in-flight limit is switched off (0), because under its limit paho
+rescans every message it holds at each acknowledgement, and the window is kept here; (3) the
+spool is read ahead in pages of :data:`PAGE` and acknowledgements are written in batches of up
+to :data:`ACK_BATCH`, as one range delete each; (4) in a backlog (:data:`BACKLOG` or more
+items read ahead) a retained ``state`` followed by a later ``state`` of the same channel is
+acknowledged without being sent — the broker would replace it at once, and every edge still
+goes out, so a subscriber loses nothing it could not get from the edges.
+
+aiomqtt facts this relies on (aiomqtt 2.x, read from its source): the paho client is
+``Client._client`` and its ``on_publish`` is aiomqtt's, which the publisher wraps for the
+session (the status messages still go through ``await client.publish(..., timeout=...)``,
+which returns after the PUBACK). A publish pending when the connection drops is *not* failed
+by aiomqtt; the loss is seen through ``client.messages``, whose iteration raises
+:class:`aiomqtt.MqttError` on disconnection, so the publisher watches that, and an item not
+acknowledged within ``publish_timeout_s`` ends the session. aiomqtt ignores a disconnection
+before CONNACK and would wait out its whole connect timeout on an endpoint that accepts the
+connection and closes it; the publisher wraps ``on_disconnect`` to fail that attempt at once.
 
 The event loop: spool calls (``peek``, ``ack``) run in a worker thread
-(:func:`asyncio.to_thread`). They are short — a range read of at most ``window`` rows, one
+(:func:`asyncio.to_thread`). They are short — a range read of at most :data:`PAGE` rows, one
 DELETE per batch of acknowledgements, batched so a burst of PUBACKs costs one commit — but the
 spool serialises callers with a lock, and the daemon's ``put_many`` holds it through an fsync
 (``synchronous=FULL``), which on an SD card can take tens of milliseconds; on the loop thread
