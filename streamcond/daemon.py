@@ -35,7 +35,8 @@ from .config import Config, load_config
 from .core.pipeline import Pipeline
 from .errors import ConfigError, InputError, StreamcondError
 from .io.lineparse import HOST_T, LineParser
-from .replay import JsonlWriter, check_columns, make_parser
+from .io.eventlog import EventLog, from_config as events_writer
+from .replay import check_columns, make_parser
 from .sdnotify import Notifier
 from .validate import validate
 
@@ -121,7 +122,7 @@ class Daemon:
         self.spool: Any = None
         self.publisher: Any = None
         self.publisher_task: asyncio.Task | None = None
-        self.writer: JsonlWriter | None = None
+        self.writer: EventLog | None = None
         self.source: Any = None
         self.source_task: asyncio.Task | None = None
         self.lost_at: float | None = None
@@ -147,8 +148,7 @@ class Daemon:
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
         self.saved_state = self.spool.load_state()
-        events = self.cfg.output.events
-        self.writer = JsonlWriter(events, flush_each=True) if events else None
+        self.writer = events_writer(self.cfg.output)
 
     def _start_publisher(self) -> None:
         if self.cfg.output.mqtt is None:
@@ -242,14 +242,17 @@ class Daemon:
                 flush_lines()
                 self.framer.reset()  # a half line from before the loss is not data
                 self.lost_at = ev.t_host
-                out.append({"kind": records.FAULT, "t": ev.t_host, "reason": "device_lost",
-                            "detail": ev.reason, "port": self.cfg.source.port})
+                out.append(records.device_lost(self._sample_time(ev.t_host), ev.reason,
+                                               self.cfg.source.port, ev.t_host))
                 self.notifier.status(f"waiting for {self.cfg.source.port}")
             elif isinstance(ev, Back):
                 flush_lines()
                 self.framer.reset(t_start=ev.t_host, resync=True)
                 t0 = self.lost_at if self.lost_at is not None else ev.t_host
-                out.append(records.gap(t0, ev.t_host, "device_lost"))
+                # in the stream's time base (sample time), like every record; utc from the host
+                s0, s1 = self._sample_time(t0), self._sample_time(ev.t_host)
+                if s0 is not None and s1 is not None:
+                    out.append(records.with_utc(records.gap(s0, s1, "device_lost"), t0))
                 self.lost_at = None
                 self.notifier.status(f"reading {self.cfg.source.port}")
         flush_lines()
@@ -274,6 +277,12 @@ class Daemon:
         self.counters.blocks += 1
         self.counters.rows += parsed.rows.shape[0]
         return self.pipeline.process(parsed.rows)
+
+    def _sample_time(self, host_t: float) -> float | None:
+        """A host clock reading in the stream's sample time (None before the first sample)."""
+        if self.pipeline is None:
+            return None
+        return self.pipeline.host_to_sample_time(host_t)
 
     def _new_pipeline(self, cfg: Config) -> Pipeline:
         assert self.parser.columns is not None
@@ -328,10 +337,10 @@ class Daemon:
             await self._stop_source()
             self._reset_parsing()
             self._start_source()
-        if new.output.events != old.output.events:
+        if (new.output.events, new.output.rotate) != (old.output.events, old.output.rotate):
             if self.writer is not None:
                 self.writer.close()
-            self.writer = JsonlWriter(new.output.events, flush_each=True) if new.output.events else None
+            self.writer = events_writer(new.output)
         if new.output.mqtt != old.output.mqtt:
             await self._stop_publisher(flush=True)
             if (new.output.mqtt and old.output.mqtt and new.output.mqtt.spool_path != old.output.mqtt.spool_path) or (
@@ -375,6 +384,8 @@ class Daemon:
         self.notifier.stopping()
         await self._stop_source()
         await self._process_pending()  # what had arrived before the stop
+        if self.pipeline is not None:
+            await self._emit(self.pipeline.flush())  # the last, partial stats window
         await self._stop_publisher(flush=True)
         if watchdog is not None:
             watchdog.cancel()
