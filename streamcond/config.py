@@ -325,6 +325,8 @@ class Mqtt(_Model):
     keepalive_s: int = Field(30, ge=5)
     spool_path: str = "state/spool.sqlite"
     spool_max_records: int = Field(1_000_000, ge=100)
+    #: Seconds between two retained health records on ``<prefix>/health`` (streamcond.health).
+    health_interval_s: float = Field(30.0, gt=0)
 
 
 class Output(_Model):
@@ -334,12 +336,29 @@ class Output(_Model):
     mqtt: Mqtt | None = None
 
 
+class Metrics(_Model):
+    """The optional Prometheus endpoint (streamcond.metrics)."""
+
+    #: ``"host:port"`` to serve ``/metrics`` on; a bare port binds 127.0.0.1. None: off.
+    listen: str | None = None
+
+    @field_validator("listen")
+    @classmethod
+    def _listen(cls, v: str | None) -> str | None:
+        if v is not None:
+            from .metrics import parse_listen
+
+            parse_listen(v)
+        return v
+
+
 class Config(_Model):
     station: Station = Field(default_factory=Station)
     source: Source
     channel: list[Channel] = Field(min_length=1)
     stats: Stats = Field(default_factory=Stats)
     output: Output = Field(default_factory=Output)
+    metrics: Metrics = Field(default_factory=Metrics)
 
     @model_validator(mode="after")
     def _cross_checks(self) -> "Config":

@@ -112,6 +112,47 @@ class Pipeline:
             tagged.sort(key=lambda r: (r[0], r[1], r[2]))
         return [r[3] for r in tagged]
 
+    def may_emit(self, rows: np.ndarray) -> bool:
+        """Could conditioning ``rows`` now emit an edge or a ``state`` record? Conservative:
+        False only when every channel provably keeps its level over these rows, so a caller
+        may hold them back and condition them later together with more (the records do not
+        depend on the blocking). One pass over all channel columns at once (2-D min/max).
+
+        A channel keeps its level when its level is known, it has no prefilter (a filter's
+        memory reaches back into rows already conditioned), no fault limits, no dwell
+        candidate pending, and its values stay on the current side: above the lower
+        threshold at level 1, below the upper at level 0. For an adaptive band the
+        thresholds can move at a noise update inside the rows, but never inside
+        ``center ± min_width/2`` (the narrowest band), which is therefore the test.
+        """
+        chans = self.channels
+        if chans is None or not self.timebase.ready or rows.shape[0] == 0:
+            return True
+        sub = rows[:, self.chan_cols]
+        lo_v = sub.min(axis=0)
+        hi_v = sub.max(axis=0)
+        for j, ch in enumerate(chans):
+            st = ch.dwell
+            if st.level not in (0, 1) or ch.cfg.filter.kind != "none" or ch.cfg.fault is not None:
+                return True
+            if st.pend_class != -1 or ch.in_fault:
+                return True
+            band = ch.band
+            if band.adaptive:
+                half = band.min_width / 2.0
+                low, high = band.center - half, band.center + half
+            else:
+                low, high = band.low, band.high
+            g, o = ch.gain, ch.offset
+            a, b = lo_v[j] * g + o, hi_v[j] * g + o
+            vmin, vmax = (a, b) if g > 0 else (b, a)
+            if st.level == 1:
+                if not vmin >= low:  # (NaN: not provable)
+                    return True
+            elif not vmax <= high:
+                return True
+        return False
+
     def finish(self) -> list[dict[str, Any]]:
         """End of stream: rows still held back for the period estimate are conditioned with
         the period estimated from what there is (a recording shorter than the estimate)."""
@@ -151,6 +192,16 @@ class Pipeline:
         self._adopt = {c.name: c for c in (old.channels or []) if c.name in names}
         if self.timebase.ready:
             self._start_channels()
+            # A channel whose settings, stats settings and sample rate are all unchanged goes
+            # on as it was: the same conditioner object, so its stats window (sample counts),
+            # noise estimate, filter, band and measures continue exactly as without a reload.
+            same_stats = old.cfg.stats == self.cfg.stats
+            old_by_name = {c.name: c for c in old.channels or []}
+            assert self.channels is not None
+            for i, ch in enumerate(self.channels):
+                prev = old_by_name.get(ch.name)
+                if same_stats and prev is not None and prev.cfg == ch.cfg and prev.period == ch.period:
+                    self.channels[i] = prev
 
     def edges_by_channel(self) -> dict[str, int]:
         return {c.name: c.edges for c in self.channels or []} or {
