@@ -57,8 +57,6 @@ RELOAD_FLUSH_S = 1.0
 COALESCE_S = 0.004
 #: Period of the housekeeping tick (held rows, health, watchdog, the disconnected log).
 TICK_S = 1.0
-#: "still disconnected, N queued" at most this often while the broker is away.
-DISCONNECTED_LOG_S = 30.0
 
 
 def store_path(cfg: Config) -> Path:
@@ -102,7 +100,9 @@ class Daemon:
         self._oldest_age: float | None = None
         self._was_connected = False
         self._disconnected_since: float | None = None
-        self._disconnected_log = RateLimitedLog(log, DISCONNECTED_LOG_S, first=0)
+        # While the broker is away, the log gets "still disconnected, N queued" once per
+        # health interval: the line stands in for the health record that cannot be sent.
+        self._disconnected_log = RateLimitedLog(log, 30.0, first=0)
 
     # -- set-up -------------------------------------------------------------------------------
     def _open_outputs(self) -> None:
@@ -203,10 +203,11 @@ class Daemon:
                      f", publishing to {self.cfg.output.mqtt.host}:{self.cfg.output.mqtt.port}"
                      if self.cfg.output.mqtt else "")
             next_ping = 0.0
+            tick = min(TICK_S, self.notifier.watchdog_s / 4) if self.notifier.watchdog_s else TICK_S
             while not self.stop_event.is_set():
                 waits = [asyncio.ensure_future(self.stop_event.wait()),
                          asyncio.ensure_future(self.reload_event.wait())]
-                await asyncio.wait(waits, timeout=TICK_S, return_when=asyncio.FIRST_COMPLETED)
+                await asyncio.wait(waits, timeout=tick, return_when=asyncio.FIRST_COMPLETED)
                 for w in waits:
                     w.cancel()
                 if self.stop_event.is_set():
@@ -278,6 +279,7 @@ class Daemon:
         if not connected:
             if self._disconnected_since is None:
                 self._disconnected_since = now
+                self._disconnected_log.interval_s = mq.health_interval_s
                 self._disconnected_log.start()  # the first line after a full interval
             self._disconnected_log.log(logging.WARNING, "MQTT broker %s:%d still disconnected, %d queued",
                                        mq.host, mq.port, len(self.spool))

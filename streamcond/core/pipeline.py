@@ -49,6 +49,7 @@ class Pipeline:
         self._restore: dict[str, dict[str, Any]] = {}
         self._adopt: dict[str, ChannelConditioner] = {}
         self._held = np.empty((0, len(self.columns)))
+        self._hold_info: Any = None  # may_emit's per-channel static test, for self.channels
         self.samples = 0  # samples passed to the channels so far
         self.gaps = 0
         self.last_t = float("nan")
@@ -128,14 +129,20 @@ class Pipeline:
         chans = self.channels
         if chans is None or not self.timebase.ready or rows.shape[0] == 0:
             return True
+        info = self._hold_info
+        if info is None or info[0] is not chans:
+            info = self._hold_info = (chans, [
+                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
+            ])
+        if not all(info[1]):
+            return True
         sub = rows[:, self.chan_cols]
-        lo_v = sub.min(axis=0)
-        hi_v = sub.max(axis=0)
-        for j, ch in enumerate(chans):
+        lo_v = sub.min(axis=0).tolist()
+        hi_v = sub.max(axis=0).tolist()
+        for ch, a, b in zip(chans, lo_v, hi_v):
             st = ch.dwell
-            if st.level not in (0, 1) or ch.cfg.filter.kind != "none" or ch.cfg.fault is not None:
-                return True
-            if st.pend_class != -1 or ch.in_fault:
+            level = st.level
+            if st.pend_class != -1 or ch.in_fault or not (level == 0 or level == 1):
                 return True
             band = ch.band
             if band.adaptive:
@@ -143,13 +150,15 @@ class Pipeline:
                 low, high = band.center - half, band.center + half
             else:
                 low, high = band.low, band.high
-            g, o = ch.gain, ch.offset
-            a, b = lo_v[j] * g + o, hi_v[j] * g + o
-            vmin, vmax = (a, b) if g > 0 else (b, a)
-            if st.level == 1:
-                if not vmin >= low:  # (NaN: not provable)
+            g = ch.gain
+            if g != 1.0 or ch.offset != 0.0:
+                a, b = a * g + ch.offset, b * g + ch.offset
+                if g < 0:
+                    a, b = b, a
+            if level == 1:
+                if not a >= low:  # (NaN: not provable)
                     return True
-            elif not vmax <= high:
+            elif not b <= high:
                 return True
         return False
 

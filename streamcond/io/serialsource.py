@@ -515,6 +515,12 @@ class SerialSource:
                 try:
                     waiting = ser.in_waiting
                     data = ser.read(waiting or 1)
+                    if data and not waiting:
+                        # woken by the first byte: the rest of its line is usually there
+                        # already; take it in this turn (one hand-over, not two)
+                        more = ser.in_waiting
+                        if more:
+                            data += ser.read(more)
                     t = self.clock()
                     self.heartbeat = time.monotonic()
                     if data:
