@@ -39,6 +39,8 @@ MAX_HOLD_S = 0.25
 #: At most one summary line about bad input per this many seconds (after the first few lines).
 BAD_INPUT_LOG_S = 60.0
 BAD_INPUT_FIRST = 5
+#: The only bytes of a CSV read the fast path takes (digits, sign, point, exponent, comma).
+_FAST_CSV = b"0123456789.,eE+-"
 
 #: One unit of work for the emitter: the records and, when they change a channel's numbering or
 #: level, the channels' state to store in the same transaction.
@@ -81,6 +83,7 @@ class LiveInput:
         self.lost_at: float | None = None
         self._held: list[np.ndarray] = []
         self._held_since = 0.0
+        self._fast_ok = False
 
     # -- events from the reader thread ----------------------------------------------------------
     def feed(self, ev: SourceEvent) -> Output | None:
@@ -137,6 +140,10 @@ class LiveInput:
                             f"(> {self.cfg.source.max_line_bytes} bytes) dropped", count=dropped)
         if not lines:
             return
+        rows = self._fast_rows(lines, times) if self._fast_ok else None
+        if rows is not None:
+            self._take(rows, t_host, out)
+            return
         try:
             parsed = self.parser.feed_lines(lines, times)
         except InputError as e:
@@ -145,6 +152,7 @@ class LiveInput:
             self.badlog.log(logging.WARNING, "bad input skipped: %s", " ".join(e.messages),
                             count=len(lines))
             self.parser = make_parser(self.cfg)
+            self._fast_ok = False
             return
         if parsed.bad:
             c.bad_lines += parsed.bad
@@ -154,6 +162,39 @@ class LiveInput:
         rows = parsed.rows
         if self.parser.columns is None or rows.shape[0] == 0:
             return
+        # the header (if any) is behind us: clean reads may take the fast path from now on
+        self._fast_ok = self.cfg.source.format == "csv"
+        self._take(rows, t_host, out)
+
+    def _fast_rows(self, lines: list[bytes], times: np.ndarray) -> np.ndarray | None:
+        """The rows of a read whose every line is plainly numeric CSV with the right number
+        of fields and only finite numbers — the rows the line parser would give for it — or
+        None: then the parser decides, line by line, with its counting and messages.
+
+        Why: the parser's general path costs about a tenth of a millisecond per call, which at
+        a hundred reads a second is most of the daemon's work. For such lines Python's float
+        conversion and numpy's loadtxt agree bit for bit (both round correctly; checked in
+        tests/test_liveinput.py), so the rows are the same.
+        """
+        ncols = self.parser.ncols
+        body = b",".join(lines)
+        if body.translate(None, _FAST_CSV):
+            return None
+        k = ncols - 1
+        for ln in lines:
+            if ln.count(b",") != k:
+                return None
+        try:
+            vals = np.array(body.split(b","), dtype=np.float64)
+        except ValueError:
+            return None
+        if not np.isfinite(vals).all():
+            return None
+        self.parser.lines += len(lines)  # line numbers in later messages stay right
+        return np.column_stack((vals.reshape(len(lines), ncols), times))
+
+    def _take(self, rows: np.ndarray, t_host: float, out: list[dict[str, Any]]) -> None:
+        c = self.counters
         c.rows += rows.shape[0]
         c.last_rx = float(rows[-1, -1])
         if self.pipeline is None:

@@ -136,9 +136,13 @@ class Pipeline:
             ])
         if not all(info[1]):
             return True
-        sub = rows[:, self.chan_cols]
-        lo_v = sub.min(axis=0).tolist()
-        hi_v = sub.max(axis=0).tolist()
+        if rows.shape[0] == 1:  # the usual live read at low rates: no numpy reductions
+            r = rows[0].tolist()
+            lo_v = hi_v = [r[c] for c in self.chan_cols]
+        else:
+            sub = rows[:, self.chan_cols]
+            lo_v = sub.min(axis=0).tolist()
+            hi_v = sub.max(axis=0).tolist()
         for ch, a, b in zip(chans, lo_v, hi_v):
             st = ch.dwell
             level = st.level
