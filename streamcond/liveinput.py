@@ -127,8 +127,13 @@ class LiveInput:
         if not out:
             return None
         self.counters.records += len(out)
-        changed = any(r["kind"] in (records.EDGE, records.STATE) for r in out)
-        state = self.pipeline.snapshot() if (changed and self.pipeline is not None) else None
+        # the state of the channels whose numbering or level changed (the spool keeps the
+        # stored state of the others as it is)
+        changed = {r["channel"] for r in out if r["kind"] in (records.EDGE, records.STATE)}
+        state = None
+        if changed and self.pipeline is not None:
+            snap = self.pipeline.snapshot()
+            state = {ch: snap[ch] for ch in changed if ch in snap}
         return Output(out, state)
 
     def _data(self, data: bytes, t_host: float, out: list[dict[str, Any]]) -> None:
