@@ -86,6 +86,9 @@ class Writer(threading.Thread):
         t0 = time.monotonic()
         last = [None] * CHANNELS
         i = 0
+        # A line end first: a reader that joins mid-stream drops everything up to the first
+        # one (the daemon does, by design), which must not cost it the first toggle.
+        self.pty.write(b"\n")
         while i < n:
             target = t0 + i / self.rate
             now = time.monotonic()
