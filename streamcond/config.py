@@ -131,7 +131,14 @@ class FixedBand(_Model):
     @classmethod
     def _from_center(cls, data: Any) -> Any:
         if isinstance(data, dict) and ("center" in data or "width" in data):
+            from .errors import suggestion
+
             data = dict(data)
+            for k in data:
+                if k not in ("mode", "low", "high", "center", "width"):
+                    # a typo beside center/width is the problem, not a missing key
+                    hint = suggestion(str(k), ("low", "high", "center", "width"))
+                    raise ValueError(f"{{at}}.{k} is not a known setting{hint}")
             if "low" in data or "high" in data:
                 raise ValueError("{at} takes either low and high, or center and width, not both")
             if "center" not in data or "width" not in data:
@@ -171,8 +178,8 @@ class AdaptiveBand(_Model):
     window_s: float = Field(5.0, gt=0)
     min_width: float = Field(0.0, ge=0)
     max_width: float | None = Field(None, gt=0)
-    #: Width in force before the first noise estimate (warm-up); default: min_width, or if that
-    #: is 0, no decisions are made until the first estimate.
+    #: Width in force before the first reliable noise estimate (warm-up); without it no
+    #: decisions are made until then (min_width is a clamp, not a guess for the start).
     initial_width: float | None = Field(None, gt=0)
 
     @model_validator(mode="after")
@@ -329,8 +336,26 @@ class Mqtt(_Model):
     health_interval_s: float = Field(30.0, gt=0)
 
 
+class Rotate(_Model):
+    """Rotation of the events file (a daemon on an SD card must not fill it): start a new file
+    when this one reaches ``max_bytes`` or has been open ``max_age_s``; keep ``keep`` old ones
+    (NAME.1 newest … NAME.keep oldest)."""
+
+    max_bytes: int | None = Field(None, ge=1024)
+    max_age_s: float | None = Field(None, gt=0)
+    keep: int = Field(5, ge=1, le=1000)
+
+    @model_validator(mode="after")
+    def _some_limit(self) -> "Rotate":
+        if self.max_bytes is None and self.max_age_s is None:
+            raise ValueError("{at} needs max_bytes or max_age_s (or both)")
+        return self
+
+
 class Output(_Model):
     events: str = "-"  # "" = no events file (e.g. a daemon that only publishes)
+    #: Rotation of the events file (none by default).
+    rotate: Rotate | None = None
     #: Channel state (seq, levels) of the live daemon when there is no MQTT spool to hold it.
     state_path: str = "state/streamcond.sqlite"
     mqtt: Mqtt | None = None
@@ -390,6 +415,25 @@ class Config(_Model):
             return self.output.mqtt.topic_prefix
         return f"streamcond/{self.station.name}"
 
+    @property
+    def client_id(self) -> str | None:
+        """The MQTT client id the daemon uses: ``output.mqtt.client_id``, else derived from the
+        topic prefix (:func:`default_client_id`); None without ``[output.mqtt]``."""
+        if self.output.mqtt is None:
+            return None
+        return self.output.mqtt.client_id or default_client_id(self.topic_prefix)
+
+
+def default_client_id(prefix: str) -> str:
+    """``streamcond-`` and 12 hex digits of SHA-256 of the prefix: 23 characters.
+
+    Stable across restarts (a station keeps its identity) and within the 23 characters every
+    MQTT 3.1.1 server must accept (§3.1.3.1).
+    """
+    import hashlib
+
+    return "streamcond-" + hashlib.sha256(prefix.encode("utf-8")).hexdigest()[:12]
+
 
 def load_config(path: str | Path) -> Config:
     """Read and validate a TOML config; raises :class:`streamcond.errors.ConfigError`."""
@@ -397,17 +441,24 @@ def load_config(path: str | Path) -> Config:
 
     p = Path(path)
     try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
+        text = p.read_text(encoding="utf-8")
+        if text.startswith("\ufeff"):
+            raise ConfigError([
+                f"The config file {str(p)!r} starts with a UTF-8 byte order mark (BOM), which "
+                "TOML does not allow; save it as UTF-8 without a BOM"
+            ])
+        data = tomllib.loads(text)
     except FileNotFoundError:
         raise ConfigError([f"The config file {str(p)!r} does not exist."]) from None
     except (OSError, UnicodeDecodeError) as e:
         raise ConfigError([f"The config file {str(p)!r} cannot be read: {e}."]) from None
     except tomllib.TOMLDecodeError as e:
         raise ConfigError([f"The config file {str(p)!r} is not valid TOML: {e}."]) from None
-    return config_from_dict(data)
+    return config_from_dict(data, text)
 
 
-def config_from_dict(data: dict[str, Any]) -> Config:
+def config_from_dict(data: dict[str, Any], text: str | None = None) -> Config:
+    """Validate a config's data; ``text`` (the TOML) lets messages give a channel's line."""
     from pydantic import ValidationError
 
     from .errors import from_validation_error
@@ -415,4 +466,4 @@ def config_from_dict(data: dict[str, Any]) -> Config:
     try:
         return Config.model_validate(data)
     except ValidationError as e:
-        raise from_validation_error(e) from None
+        raise from_validation_error(e, data, text) from None

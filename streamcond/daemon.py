@@ -42,7 +42,7 @@ from .errors import ConfigError, InputError, StreamcondError
 from .health import HealthRecorder, ProgressWatch, Snapshot, oldest_age_s, process_cpu_s, process_rss_bytes
 from .liveinput import LiveInput
 from .ratelimit import RateLimitedLog
-from .replay import JsonlWriter
+from .io.eventlog import from_config as events_writer
 from .sdnotify import Notifier
 
 log = logging.getLogger("streamcond.daemon")
@@ -115,8 +115,7 @@ class Daemon:
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
         saved = self.spool.load_state()
-        events = self.cfg.output.events
-        writer = JsonlWriter(events, flush_each=True) if events else None
+        writer = events_writer(self.cfg.output)
         self.emitter = Emitter(self.spool, writer, self._mqtt_target(self.cfg), None)
         self.live = LiveInput(self.cfg, saved)
 
@@ -339,9 +338,8 @@ class Daemon:
             self.emitter.put(self.live.flush())
             self.live = LiveInput(new, self.live.snapshot())
             self._start_source()
-        if new.output.events != old.output.events:
-            self.emitter.swap_writer(JsonlWriter(new.output.events, flush_each=True)
-                                     if new.output.events else None)
+        if (new.output.events, new.output.rotate) != (old.output.events, old.output.rotate):
+            self.emitter.swap_writer(events_writer(new.output))
         self.emitter.mqtt = self._mqtt_target(new)
         if new.output.mqtt != old.output.mqtt or new.topic_prefix != old.topic_prefix:
             if (new.output.mqtt and old.output.mqtt and new.output.mqtt.spool_path != old.output.mqtt.spool_path) or (
@@ -405,7 +403,8 @@ class Daemon:
                 self._switch_task.cancel()
         if self.emitter is not None:
             if self.live is not None and self.fatal is None:
-                self.emitter.put(self.live.flush())  # what had arrived before the stop
+                # what had arrived before the stop, and the last, partial stats window
+                self.emitter.put(self.live.flush(final=True))
             await asyncio.to_thread(self.emitter.close)
         await self._stop_publisher(flush_s=STOP_FLUSH_S)
         if self.metrics is not None:

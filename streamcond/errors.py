@@ -6,6 +6,9 @@ writes it in TOML (``channel[1].band.low``), never as a traceback (DESIGN.md: ex
 
 from __future__ import annotations
 
+import difflib
+import re
+import typing
 from typing import Any, Iterable
 
 # Tags pydantic inserts into error locations for discriminated unions; not part of the user's key.
@@ -106,6 +109,10 @@ def _describe(err: dict[str, Any]) -> str:
     if typ == "union_tag_invalid":
         key = "mode" if where.endswith("band") else "kind"
         return f"{where}.{key} must be one of {ctx.get('expected_tags', '')}, not {ctx.get('tag')!r}"
+    if typ == "extra_forbidden":
+        loc = [p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-"))]
+        name = str(loc[-1]) if loc else ""
+        return f"{where} is not a known setting" + suggestion(name, known_keys(tuple(loc[:-1])))
     if typ in _TEMPLATES:
         fields = _Ctx(ctx, where=where)
         fields.setdefault("discriminator", "kind")
@@ -113,11 +120,103 @@ def _describe(err: dict[str, Any]) -> str:
     return f"{where}: {err['msg']}"
 
 
-def from_validation_error(exc: Any) -> ConfigError:
-    """Turn a pydantic ``ValidationError`` into a :class:`ConfigError` of plain sentences."""
+def suggestion(name: str, known: Iterable[str]) -> str:
+    """``"; did you mean 'width'?"`` for the nearest known key (difflib's ratio, cutoff 0.6), or ``""``."""
+    close = difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _models(tp: Any) -> list[Any]:
+    """The pydantic models an annotation can hold (Optional, list, Annotated and unions unwrapped)."""
+    from pydantic import BaseModel
+
+    origin = typing.get_origin(tp)
+    if origin is typing.Annotated:
+        return _models(typing.get_args(tp)[0])
+    if origin is not None:
+        return [m for a in typing.get_args(tp) for m in _models(a)]
+    if isinstance(tp, type) and issubclass(tp, BaseModel):
+        return [tp]
+    return []
+
+
+def _tag_of(model: Any) -> set[str]:
+    tags: set[str] = set()
+    for key in ("kind", "mode"):
+        f = model.model_fields.get(key)
+        if f is not None and typing.get_origin(f.annotation) is typing.Literal:
+            tags.update(str(a) for a in typing.get_args(f.annotation))
+    return tags
+
+
+def known_keys(loc: tuple[Any, ...]) -> list[str]:
+    """The setting names the config accepts in the table at ``loc`` (a pydantic error location)."""
+    from .config import Config
+
+    models: list[Any] = [Config]
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        if part in _UNION_TAGS:
+            tagged = [m for m in models if part in _tag_of(m)]
+            if tagged:
+                models = tagged
+                continue
+        nxt: list[Any] = []
+        for m in models:
+            f = m.model_fields.get(part)
+            if f is not None:
+                nxt += _models(f.annotation)
+        models = nxt
+        if not models:
+            return []
+    return sorted({k for m in models for k in m.model_fields})
+
+
+class SourceText:
+    """Where the config's channels are, for messages: their names and the lines of their
+    ``[[channel]]`` headers (TOML parsers give no line numbers; the headers are found in the text)."""
+
+    def __init__(self, data: dict[str, Any] | None, text: str | None = None) -> None:
+        chans = data.get("channel") if isinstance(data, dict) else None
+        self.names = [c.get("name") if isinstance(c, dict) else None for c in chans] if isinstance(chans, list) else []
+        self.lines: list[int] = []
+        self.text = text is not None
+        if text is not None:
+            self.lines = [
+                text.count("\n", 0, m.start()) + 1
+                for m in re.finditer(r"^[ \t]*\[\[[ \t]*channel[ \t]*\]\]", text, re.M)
+            ]
+            if len(self.lines) != len(self.names):
+                self.lines = []  # channels given some other way (an inline array): no lines
+
+    def where(self, message: str) -> str:
+        """The message with the channel it is about named: ``In channel 'pump' (line 21): ...``
+        (only for a config read from a file: messages about a dict keep their plain form)."""
+        m = re.search(r"channel\[(\d+)\]", message) if self.text else None
+        if not m:
+            return message
+        i = int(m.group(1))
+        name = self.names[i] if i < len(self.names) else None
+        parts = []
+        if isinstance(name, str) and name:
+            parts.append(f"channel {name!r}")
+        if i < len(self.lines):
+            parts.append(f"line {self.lines[i]}")
+        if not parts:
+            return message
+        return f"In {parts[0]}" + (f" ({parts[1]})" if len(parts) > 1 else "") + f": {message}"
+
+
+def from_validation_error(
+    exc: Any, data: dict[str, Any] | None = None, text: str | None = None
+) -> ConfigError:
+    """Turn a pydantic ``ValidationError`` into a :class:`ConfigError` of plain sentences;
+    with the config's ``data`` (and ``text``) a channel is named by its name and line."""
+    src = SourceText(data, text)
     seen: list[str] = []
     for err in exc.errors(include_url=False):
-        msg = _describe(err)
+        msg = src.where(_describe(err))
         if msg not in seen:
             seen.append(msg)
     return ConfigError(seen)

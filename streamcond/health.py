@@ -32,7 +32,9 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-HEALTH = "health"
+from . import records
+
+HEALTH = records.HEALTH
 #: A part of the pipeline that has not moved for this long is stalled: the watchdog is then no
 #: longer fed, so systemd restarts the service (sd_notify(3), ``WatchdogSec=``). The serial
 #: reader turns at least every read timeout (0.1 s) or reconnect attempt (at most 2 s apart),
@@ -96,24 +98,23 @@ class HealthRecorder:
         cpu = (s.cpu_s - (p.cpu_s if p else 0.0)) / dt * 100.0 if (dt > 0 and p is not None) else (
             s.cpu_s / s.uptime_s * 100.0 if s.uptime_s > 0 else 0.0
         )
-        return {
-            "kind": HEALTH,
-            "t": _finite(s.t, 9),
-            "uptime_s": round(s.uptime_s, 3),
-            "rows": s.rows,
-            "rows_per_s": round(rows_per_s, 3),
-            "bad_lines": s.bad_lines,
-            "long_lines": s.long_lines,
-            "edges": dict(s.edges),
-            "spool_depth": s.spool_depth,
-            "spool_oldest_age_s": _finite(s.spool_oldest_age_s),
-            "dropped": s.dropped,
-            "reconnects": s.reconnects,
-            "broker_connected": bool(s.broker_connected),
-            "last_sample_age_s": _finite(s.last_sample_age_s),
-            "cpu_percent": round(cpu, 2),
-            "rss_mib": round(s.rss_bytes / 2**20, 1),
-        }
+        return records.health(
+            t=_finite(s.t, 9),
+            uptime_s=round(s.uptime_s, 3),
+            rows=s.rows,
+            rows_per_s=round(rows_per_s, 3),
+            bad_lines=s.bad_lines,
+            long_lines=s.long_lines,
+            edges=dict(s.edges),
+            spool_depth=s.spool_depth,
+            spool_oldest_age_s=_finite(s.spool_oldest_age_s),
+            dropped=s.dropped,
+            reconnects=s.reconnects,
+            broker_connected=bool(s.broker_connected),
+            last_sample_age_s=_finite(s.last_sample_age_s),
+            cpu_percent=round(cpu, 2),
+            rss_mib=round(s.rss_bytes / 2**20, 1),
+        )
 
 
 def oldest_age_s(oldest_payload: bytes | None, t_now: float | None) -> float | None:

@@ -96,22 +96,34 @@ class LiveInput:
                 self._condition_held(out)
                 self.framer.reset()  # a half line from before the loss is not data
                 self.lost_at = ev.t_host
-                out.append({"kind": records.FAULT, "t": ev.t_host, "reason": "device_lost",
-                            "detail": ev.reason, "port": self.cfg.source.port})
+                out.append(records.device_lost(self._sample_time(ev.t_host), ev.reason,
+                                               self.cfg.source.port, ev.t_host))
             elif isinstance(ev, Back):
                 self._condition_held(out)
                 self.framer.reset(t_start=ev.t_host, resync=True)
                 t0 = self.lost_at if self.lost_at is not None else ev.t_host
-                out.append(records.gap(t0, ev.t_host, "device_lost"))
+                # in the stream's time base (sample time), like every record; utc from the host
+                s0, s1 = self._sample_time(t0), self._sample_time(ev.t_host)
+                if s0 is not None and s1 is not None:
+                    out.append(records.with_utc(records.gap(s0, s1, "device_lost"), t0))
                 self.lost_at = None
             return self._output(out)
 
-    def flush(self) -> Output | None:
-        """Condition everything held back (before a stop or a reload)."""
+    def flush(self, final: bool = False) -> Output | None:
+        """Condition everything held back (before a stop or a reload); with ``final`` (a clean
+        stop) also the last, partial stats window of every channel."""
         with self.lock:
             out: list[dict[str, Any]] = []
             self._condition_held(out)
+            if final and self.pipeline is not None:
+                out.extend(self.pipeline.flush())
             return self._output(out)
+
+    def _sample_time(self, host_t: float) -> float | None:
+        """A host clock reading in the stream's sample time (None before the first sample)."""
+        if self.pipeline is None:
+            return None
+        return self.pipeline.host_to_sample_time(host_t)
 
     def flush_stale(self, now: float) -> Output | None:
         """Condition held rows that have waited ``max_hold_s`` (``now``: host time, as the

@@ -11,7 +11,7 @@ import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, TextIO
+from typing import Any, Callable, Iterable
 
 import numpy as np
 
@@ -19,6 +19,7 @@ from . import records
 from .config import Config
 from .errors import InputError
 from .io.capture import is_capture, read_capture_blocks
+from .io.eventlog import EventLog
 from .io.lineparse import HOST_T, LineParser
 from .io.recording import DEFAULT_BLOCK_BYTES, read_blocks
 
@@ -57,23 +58,49 @@ def check_columns(cfg: Config, columns: list[str]) -> None:
 
 
 def open_recording(
-    cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES
+    cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES,
+    reader: str | None = None,
 ) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool]:
-    """The parser and the block iterator for a recording or a capture, and whether the rows
-    carry host receive times as their sample time (a capture read with a config that has no
-    time column and no fixed rate)."""
-    parser = make_parser(cfg)
+    """The parser and the block iterator for a recording or a capture (text, Parquet or Arrow
+    IPC), and whether the rows carry host receive times as their sample time (a capture read
+    with a config that has no time column and no fixed rate). ``reader`` picks the CSV block
+    reader (``numpy`` or ``pyarrow``; default: the fastest installed)."""
+    from .io.recording import kind_of
+
     src = cfg.source
-    capture = is_capture(recording)
+    parser = LineParser(src.format, columns=src.columns, needed=needed_columns(cfg),
+                        max_line_bytes=src.max_line_bytes, reader=reader)
+    kind = kind_of(recording)
+    if kind != "text":
+        from .io.columnar import has_host_time, is_columnar_capture, read_columnar_blocks
+
+        capture = is_columnar_capture(recording, kind) or has_host_time(recording, kind)
+    else:
+        capture = is_capture(recording)
     if src.host_time and not capture:
         raise InputError(
             f"The recording {str(recording)!r} carries no sample time: set source.time_column "
             "or source.sample_rate_hz, or use a capture made by `streamcond record`"
         )
     host_time = capture and src.host_time
+    if kind != "text":
+        # a columnar capture, like a text one, always carries the host time as a last column
+        return parser, read_columnar_blocks(recording, parser, kind, capture), host_time
     if capture:
-        return parser, read_capture_blocks(recording, parser, host_time, block_bytes), host_time
+        # the rows always carry the recorded host time (a last column): the sample time when
+        # the data has none, and the wall-clock stamp (``utc``) of the records either way
+        return parser, read_capture_blocks(recording, parser, True, block_bytes), host_time
     return parser, read_blocks(recording, parser, block_bytes), host_time
+
+
+class ReplayInterrupted(Exception):
+    """Ctrl-C during a replay: the records up to ``t`` were written, ending with an
+    ``interrupted`` record."""
+
+    def __init__(self, t: float, rows: int) -> None:
+        super().__init__(f"interrupted at t = {t:.3f} s")
+        self.t = t
+        self.rows = rows
 
 
 @dataclass
@@ -114,10 +141,13 @@ def run_replay(
     from .core.pipeline import Pipeline
 
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
+    # rows with the host receive time as a last column: a text capture always (see
+    # open_recording), any other capture when that time is the sample time
+    with_host_column = host_time or is_capture(recording)
 
     def new_pipeline(columns: list[str]) -> Pipeline:
         check_columns(cfg, columns)
-        return Pipeline(cfg, columns + [HOST_T] if host_time else columns, host_time=host_time)
+        return Pipeline(cfg, columns + [HOST_T] if with_host_column else columns, host_time=host_time)
 
     pipe: Pipeline | None = None
     res = ReplayResult()
@@ -134,26 +164,49 @@ def run_replay(
             if keep_records:
                 res.records.append(r)
 
-    for parsed, done, size in blocks:
-        if parsed.examples:
-            for msg in parsed.examples:
-                log.warning("bad input skipped: %s", msg)
-        if pipe is None:
-            if parser.columns is None:
-                continue
-            pipe = new_pipeline(parser.columns)
-        for piece in _chunks(parsed.rows, chunk):
-            res.rows += piece.shape[0]
-            emit(pipe.process(piece))
-            if speed is not None and np.isfinite(pipe.last_t):
-                if t_first is None:
-                    t_first = pipe.last_t
-                    pace0 = clock()
-                wait = (pipe.last_t - t_first) / speed - (clock() - pace0)
-                if wait > 0:
-                    sleep(wait)
-        if progress is not None:
-            progress.update(done, res.rows)
+    done_before = 0
+    try:
+        for parsed, done, size in blocks:
+            if parsed.examples:
+                for msg in parsed.examples:
+                    log.warning("bad input skipped: %s", msg)
+            if pipe is None:
+                if parser.columns is None:
+                    continue
+                pipe = new_pipeline(parser.columns)
+            n_block = max(parsed.rows.shape[0], 1)
+            in_block = 0
+            for piece in _chunks(parsed.rows, chunk):
+                res.rows += piece.shape[0]
+                in_block += piece.shape[0]
+                emit(pipe.process(piece))
+                if speed is not None and np.isfinite(pipe.last_t):
+                    if t_first is None:
+                        t_first = pipe.last_t
+                        pace0 = clock()
+                    wait = (pipe.last_t - t_first) / speed - (clock() - pace0)
+                    if wait > 0:
+                        sleep(wait)
+                if progress is not None:
+                    # driven by sample time, after every piece; the bytes done inside a block
+                    # are estimated from the rows done (the block is parsed as a whole)
+                    est = done_before + (done - done_before) * in_block / n_block
+                    progress.update(int(est), res.rows, pipe.last_t)
+            done_before = done
+            if progress is not None:
+                progress.update(done, res.rows, pipe.last_t if pipe is not None else None)
+    except KeyboardInterrupt:
+        t_stop = pipe.last_t if pipe is not None else float("nan")
+        if pipe is not None:
+            try:
+                emit(pipe.flush())
+            except Exception as e:  # stopped mid-block: the closing record matters more
+                log.debug("no partial windows after the interrupt: %s", e)
+        stop = records.interrupted(t_stop)
+        if pipe is not None and pipe.host_col is not None:
+            records.with_utc(stop, pipe.last_host_t)
+        emit([stop])
+        raise ReplayInterrupted(t_stop, res.rows) from None
     if pipe is None:
         if parser.columns is None:
             raise InputError(f"The recording {str(recording)!r} holds no data lines")
@@ -164,55 +217,28 @@ def run_replay(
                     parser.bad, len(parser.examples))
     res.bad_lines = parser.bad  # the parser counts every bad line it skipped
     res.examples = list(parser.examples)
-    res.summary = {
-        "kind": records.SUMMARY,
-        "t": pipe.last_t,
-        "rows": res.rows,
-        "samples": pipe.samples,
-        "bad_lines": res.bad_lines,
-        "bad_line_examples": res.examples,
-        "gaps": pipe.gaps,
-        "dropped": pipe.timebase.dropped,
-        "sample_rate_hz": pipe.sample_rate_hz,
-        "edges": pipe.edges_by_channel(),
-        "run_time_s": round(time.monotonic() - wall0, 6),
-    }
+    res.summary = records.summary(
+        pipe.last_t,
+        rows=res.rows,
+        samples=pipe.samples,
+        bad_lines=res.bad_lines,
+        bad_line_examples=res.examples,
+        gaps=pipe.gaps,
+        dropped=pipe.timebase.dropped,
+        sample_rate_hz=pipe.sample_rate_hz,
+        edges=pipe.edges_by_channel(),
+        totals=pipe.totals(),
+        run_time_s=round(time.monotonic() - wall0, 6),
+    )
+    if pipe.host_col is not None:
+        records.with_utc(res.summary, pipe.last_host_t)
     emit([res.summary])
     return res
 
 
-class JsonlWriter:
-    """Writes records as JSON lines to a file or stdout (``-``)."""
+class JsonlWriter(EventLog):
+    """The events writer of earlier versions: replaces an existing file (kept for callers that
+    have not moved to :class:`streamcond.io.eventlog.EventLog`, which checks the path)."""
 
     def __init__(self, target: str | None, flush_each: bool = False) -> None:
-        self.flush_each = flush_each
-        self._own = False
-        self.fh: TextIO | None
-        if not target:  # None or "": no events output
-            self.fh = None
-        elif target == "-":
-            self.fh = sys.stdout
-        else:
-            p = Path(target)
-            try:
-                if p.parent and not p.parent.exists():
-                    p.parent.mkdir(parents=True, exist_ok=True)
-                self.fh = open(p, "w", encoding="utf-8")
-            except OSError as e:
-                raise InputError(f"The events file {target!r} cannot be written: {e.strerror}") from None
-            self._own = True
-
-    def __call__(self, rec: dict[str, Any]) -> None:
-        if self.fh is None:
-            return
-        self.fh.write(records.to_json(rec) + "\n")
-        if self.flush_each:
-            self.fh.flush()
-
-    def close(self) -> None:
-        if self.fh is None:
-            return
-        if self._own:
-            self.fh.close()
-        else:
-            self.fh.flush()
+        super().__init__(target, flush_each=flush_each, mode="replace")

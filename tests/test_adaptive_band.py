@@ -13,6 +13,7 @@ import pytest
 from conftest import as_json, config_dict, of_kind, run_pipeline
 from streamcond.config import config_from_dict
 from streamcond.core.channel import ChannelConditioner
+from streamcond.core.noise import MIN_SAMPLES
 
 FS = 200.0
 
@@ -124,17 +125,75 @@ def test_adaptive_band_is_chunk_invariant(switching):
 # --- warm-up --------------------------------------------------------------------------------
 
 
-def test_no_decision_before_the_first_estimate_without_min_or_initial_width():
+def _first_estimate_n(band: dict) -> int:
+    """The sample count of the tracker's first estimate: the earliest point of its grid (every
+    window_n // 10 samples, reaching back from the first full window) holding MIN_SAMPLES."""
+    window_n = int(round(band["window_s"] * FS))
+    every = window_n // 10
+    return window_n - ((window_n - MIN_SAMPLES) // every) * every
+
+
+def test_no_decision_before_the_first_estimate_without_initial_width():
     t, x, _ = switching_signal(seed=3)
     recs = replay(ADAPTIVE, t, x)
-    window_n = int(round(WINDOW_S * FS))
-    # The first estimate covers samples 0 .. window_n-1 and is in force from sample window_n.
-    first_estimate_t = window_n / FS
+    first_n = _first_estimate_n(ADAPTIVE)
+    # The first estimate covers samples 0 .. first_n-1 and is in force from sample first_n:
+    # as soon as the estimator has enough samples, well before one full window_s.
+    first_estimate_t = first_n / FS
+    assert first_estimate_t < WINDOW_S
     decisions = [r for r in recs if r["kind"] in ("state", "edge")]
     assert decisions[0]["kind"] == "state"
     assert decisions[0]["t"] >= first_estimate_t
-    early_stats = [r for r in of_kind(recs, "stats") if r["t_end"] <= first_estimate_t]
-    assert early_stats and all(_width(r) is None for r in early_stats)  # band not known yet
+    # the first stats window (to 1 s) already carries that warm-up estimate, over the samples
+    # it had: fewer than one window_s
+    first = of_kind(recs, "stats")[0]
+    assert first["reliable"] is True and first["noise_window_s"] == pytest.approx(first_estimate_t)
+    assert _width(first) == pytest.approx(6 * first["noise_sigma"])
+
+
+def test_min_width_is_no_guess_for_the_warm_up():
+    """A signal resting at the band centre (the worst case for a band that is too narrow):
+    with only min_width (tiny) and no initial_width, nothing is decided until the noise is
+    measured, and then the band is k·σ̂ — no burst of false edges at start-up."""
+    n = int(10 * FS)
+    t = np.arange(n) / FS
+    x = CENTER + SIGMA_QUIET * np.random.default_rng(11).standard_normal(n)
+    band = dict(ADAPTIVE, min_width=0.001)
+    recs = replay(band, t, x)
+    first_estimate_t = _first_estimate_n(band) / FS
+    decisions = [r for r in recs if r["kind"] in ("state", "edge")]
+    assert decisions and decisions[0]["t"] >= first_estimate_t
+    # Rice (S. O. Rice, BSTJ 1944-45): white noise sampled at FS crosses a level 3σ above its
+    # mean upward at ν0·e^(-4.5), ν0 = FS/4 (Sheppard's orthant probability, from memory):
+    # about 0.56 per second here, so a 6σ band gives a handful of edges in 10 s — where a
+    # band of min_width (0.02σ) would give one at nearly every other sample (measured: over
+    # 1,000).
+    expected = (FS / 4) * np.exp(-4.5) * (t[-1] - first_estimate_t)
+    edges = of_kind(recs, "edge")
+    assert len(edges) <= expected + 4 * np.sqrt(expected)  # Poisson, 4 standard deviations
+
+
+def test_unreliable_estimates_keep_the_last_reliable_band():
+    """Noise flat to 2 Hz (correlation time fs/2B = 50 samples) in a 1 s window (200 samples,
+    4 correlation times): the estimate cannot be trusted and says so; the band never moves from
+    initial_width, and the stats records carry reliable = false with a reason."""
+    n = int(30 * FS)
+    t = np.arange(n) / FS
+    spec = np.fft.rfft(np.random.default_rng(5).standard_normal(n))
+    spec[np.fft.rfftfreq(n, 1 / FS) > 2.0] = 0.0
+    x = np.fft.irfft(spec, n)
+    x = CENTER + SIGMA_QUIET * x / x.std()
+    band = {"mode": "adaptive", "center": CENTER, "k": 6.0, "window_s": 1.0,
+            "initial_width": 0.4}
+    recs = replay(band, t, x)
+    stats = of_kind(recs, "stats")
+    assert stats and all(r["reliable"] is False and r["reliable_reason"] for r in stats[1:])
+    assert all(_width(r) == pytest.approx(0.4) for r in stats)
+    def missing(v: float | None) -> bool:  # null in the JSON line
+        return v is None or not np.isfinite(v)
+
+    assert all(missing(r["margin_sigma"]) and missing(r["predicted_false_rate_per_hour"])
+               for r in stats[1:])
 
 
 def test_initial_width_decides_from_the_first_sample():
@@ -190,3 +249,24 @@ def test_narrowing_update_that_would_flip_the_level_is_held_back():
     # after the flip nothing holds it back: the band narrows to k·σ_quiet (±25 %, as above)
     after = [_width(r) for r in stats if r["t"] >= 21.0]
     assert after and all(0.75 * 0.06 < wd < 1.25 * 0.06 for wd in after)
+
+
+def test_a_sine_starting_at_its_zero_crossing_gives_no_start_up_burst():
+    """A 0.5 Hz sine of 40σ starting at the band centre, min_width tiny: before the noise is
+    measured nothing is decided; afterwards each crossing of the centre gives one edge."""
+    n = int(20 * FS)
+    t = np.arange(n) / FS
+    x = CENTER + 40 * SIGMA_QUIET * np.sin(2 * np.pi * 0.5 * t)
+    x = x + SIGMA_QUIET * np.random.default_rng(12).standard_normal(n)
+    band = dict(ADAPTIVE, min_width=0.001)
+    recs = replay(band, t, x)
+    first_estimate_t = _first_estimate_n(band) / FS
+    state = of_kind(recs, "state")[0]
+    assert state["t"] >= first_estimate_t
+    edges = of_kind(recs, "edge")
+    # Truth: the sine crosses its centre at t = k·1 s (closed form), k = 1 .. 19 after the
+    # first decision (< 1 s); one edge each, alternating, within the time the sine needs to
+    # cross half the band (h/slope, slope 2π·0.5·40σ at a crossing: about 12 ms for h = 3σ).
+    crossings = np.arange(1, 20)
+    assert len(edges) == crossings.size
+    assert np.all(np.abs(np.array([e["t"] for e in edges]) - crossings) < 0.05)

@@ -57,7 +57,7 @@ def test_center_width_resolves_to_low_high():
         (with_channel(filter={"kind": "wavelet"}), "channel[0].filter.kind must be one of"),
         (with_channel(dwell={"rise_s": -1}), "channel[0].dwell.rise_s must be at least 0"),
         (with_channel(name="tank level"), "channel[0].name may only contain"),
-        (with_channel(colour="red"), "channel[0].colour is not a known setting."),
+        (with_channel(colour="red"), "channel[0].colour is not a known setting"),
         (with_channel(band={"mode": "adaptive"}), "channel[0].band.center is required."),
         ({**BASE, "source": {"kind": "serial"}}, "source.port is required"),
         ({**BASE, "channel": []}, "channel must have at least 1 item"),
@@ -109,8 +109,8 @@ def test_bad_config_exit_2_without_traceback(tmp_path):
     assert "Traceback" not in r.stderr
     lines = r.stderr.strip().splitlines()
     assert lines == [
-        "channel[0].band.low (5) must be below channel[0].band.high (1).",
-        "channel[1].filter.tau_s is required.",
+        "In channel 'a' (line 4): channel[0].band.low (5) must be below channel[0].band.high (1).",
+        "In channel 'b' (line 7): channel[1].filter.tau_s is required.",
     ]
 
 
@@ -132,13 +132,14 @@ def test_unreadable_config_exit_2(tmp_path, text, fragment):
 def test_check_prints_resolved_settings():
     r = run_cli("check", "-c", "config/orchard_pump.toml")
     assert r.returncode == 0, r.stderr
-    assert "low = 2.36" in r.stdout and "high = 2.44" in r.stdout
-    assert "delay_samples = 4.0" in r.stdout  # median of 9: (N-1)/2
+    assert "low = 2.3575" in r.stdout and "high = 2.4425" in r.stdout
+    assert "delay 4 samples" in r.stdout  # median of 9: (N-1)/2, a comment (derived)
     r = run_cli("check", "-c", "config/orchard_pump.toml", "--json")
     import json
 
     d = json.loads(r.stdout)
-    assert d["channel"][0]["band"]["width"] == pytest.approx(0.08)
+    assert d["channel"][0]["band"]["width"] == pytest.approx(0.085)
+    assert d["channel"][0]["filter"]["delay_samples"] == 4.0
 
 
 def test_check_and_help_do_not_import_heavy_modules():
@@ -173,3 +174,97 @@ def test_settings_impossible_at_the_measured_rate_exit_2(tmp_path):
     )
     r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg))
     assert r.returncode == 2 and r.stderr.startswith("channel[0].filter:") and "Nyquist" in r.stderr
+
+
+# -- issue 12, item 12: `check` prints TOML that loads back, with the real values ---------------
+
+
+@pytest.mark.parametrize("config", ["config/orchard_pump.toml", "config/serial_example.toml"])
+def test_check_output_loads_back_as_the_same_config(tmp_path, config):
+    r = run_cli("check", "-c", config)
+    assert r.returncode == 0, r.stderr
+    out = tmp_path / "resolved.toml"
+    out.write_text(r.stdout)
+    again = run_cli("check", "-c", str(out))
+    assert again.returncode == 0, again.stderr  # it used to give 5 errors
+    assert again.stdout == r.stdout  # a fixed point: the same settings, printed the same
+    a, b = load_config(ROOT / config), load_config(out)
+    assert [c.band for c in a.channel] == [c.band for c in b.channel] or all(
+        x.band.low == pytest.approx(y.band.low) and x.band.high == pytest.approx(y.band.high)
+        for x, y in zip(a.channel, b.channel)
+    )
+    assert a.source == b.source and a.stats == b.stats
+
+
+def test_check_shows_the_derived_mqtt_client_id():
+    from streamcond.io.mqtt import default_client_id
+
+    cfg = load_config(ROOT / "config" / "serial_example.toml")
+    assert cfg.output.mqtt is not None and cfg.output.mqtt.client_id is None
+    r = run_cli("check", "-c", "config/serial_example.toml")
+    # the id the daemon's publisher derives (io/mqtt.py), not "(not set)"
+    assert f'# client_id = "{default_client_id(cfg.topic_prefix)}"' in r.stdout
+    assert f'# topic_prefix = "{cfg.topic_prefix}"' in r.stdout
+    d = __import__("json").loads(run_cli("check", "-c", "config/serial_example.toml", "--json").stdout)
+    assert d["output"]["mqtt"]["client_id"] == default_client_id(cfg.topic_prefix)
+
+
+# -- issue 12, item 15: typos, a byte order mark, channels by name ------------------------------
+
+
+def test_typo_names_the_key_and_suggests_the_nearest(tmp_path):
+    msgs = errors_of(with_channel(band={"center": 2.4, "widht": 0.08}))
+    assert msgs == ["channel[0].band.widht is not a known setting; did you mean 'width'?"]
+    msgs = errors_of({**BASE, "source": {"kind": "file", "time_colum": "t"}})
+    assert msgs == ["source.time_colum is not a known setting; did you mean 'time_column'?"]
+    msgs = errors_of(with_channel(measure={"pulses_per_rew": 2}))
+    assert msgs == ["channel[0].measure.pulses_per_rew is not a known setting; did you mean 'pulses_per_rev'?"]
+    msgs = errors_of(with_channel(filter={"kind": "median", "windw": 3}))
+    assert "channel[0].filter.windw is not a known setting; did you mean 'window'?" in msgs
+    assert errors_of(with_channel(zzz=1)) == ["channel[0].zzz is not a known setting."]  # none near
+
+
+def test_utf8_byte_order_mark_is_named(tmp_path):
+    cfg = tmp_path / "bom.toml"
+    cfg.write_bytes(b"\xef\xbb\xbf" + (ROOT / "config" / "orchard_pump.toml").read_bytes())
+    r = run_cli("check", "-c", str(cfg))
+    assert r.returncode == 2 and "byte order mark" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_channels_named_by_name_and_line(tmp_path):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(
+        '[source]\nkind = "file"\nsample_rate_hz = 100.0\n\n'
+        '[[channel]]\nname = "tank_high"\nband = { low = 0, high = 1 }\n\n'
+        '[[channel]]\nname = "pump"\nband = { low = 4, high = 2 }\n'
+    )
+    r = run_cli("check", "-c", str(cfg))
+    assert r.returncode == 2
+    assert r.stderr.strip() == (
+        "In channel 'pump' (line 9): channel[1].band.low (4) must be below channel[1].band.high (2)."
+    )
+
+
+def test_check_round_trip_of_every_kind_of_table(tmp_path):
+    src = tmp_path / "full.toml"
+    src.write_text(
+        '[source]\nkind = "file"\nsample_rate_hz = 100.0\ncolumns = ["a", "b"]\n'
+        '[[channel]]\nname = "a"\nfilter = { kind = "ema", tau_s = 0.05 }\n'
+        'band = { mode = "adaptive", center = 1.0, initial_width = 0.3 }\n'
+        'measure = { pulses_per_rev = 2, rate_per = "s" }\nfault = { at_or_below = -5 }\n'
+        '[[channel]]\nname = "b"\nband = { center = 0.1, width = 0.2 }\n'
+        '[output]\nevents = "x.jsonl"\nrotate = { max_age_s = 3600 }\n[output.mqtt]\nclient_id = "me"\n'
+    )
+    first = run_cli("check", "-c", str(src))
+    assert first.returncode == 0, first.stderr
+    out = tmp_path / "resolved.toml"
+    out.write_text(first.stdout)
+    again = run_cli("check", "-c", str(out))
+    assert again.returncode == 0, again.stderr
+    assert again.stdout == first.stdout
+    assert load_config(src) == load_config(out)  # the same config, every field
+    # EMA delay (1−α)/α samples, α = 1 − exp(−Δt/τ): the first-order IIR's DC group delay
+    import math
+
+    a = 1 - math.exp(-0.01 / 0.05)
+    assert f"delay {(1 - a) / a:.12g} samples" in first.stdout

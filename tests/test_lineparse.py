@@ -63,8 +63,11 @@ def test_bad_rows_skipped_and_counted():
 
 
 def test_no_header_needs_columns():
-    with pytest.raises(InputError, match="source.columns"):
-        feed_all(LineParser("csv"), b"0,1,2\n1,2,3\n")
+    # without columns, number lines before a header are bad lines (the reader of a file turns
+    # "no header at all" into an input error, see test_replay)
+    p = LineParser("csv")
+    rows, bad = feed_all(p, b"0,1,2\n1,2,3\n")
+    assert rows.shape[0] == 0 and bad == 2 and p.columns is None and p.before_header == 2
     p = LineParser("csv", columns=["t", "a", "b"])
     rows, bad = feed_all(p, b"0,1,2\n1,2,3\n")
     assert rows.shape == (2, 3) and bad == 0
@@ -121,3 +124,73 @@ def test_any_split_of_the_bytes_gives_the_same_rows(cuts, junk):
     np.testing.assert_array_equal(whole, split)
     assert bad_whole == bad_split
     assert whole.shape[0] == 150
+
+
+# --- issue 9: strictness, limits and headers, each decided deliberately ----------------------
+
+
+def test_json_huge_int_and_deep_nesting_are_bad_lines_not_crashes():
+    p = LineParser("json", needed=["t", "a"])
+    lines = [
+        b'{"t":2,"a":1' + b"0" * 400 + b"}",  # 10^400: no double holds it (IEEE 754 max ~1.8e308)
+        b"[" * 2000 + b"]" * 2000,  # deeper than Python's recursion limit (1000)
+        b'{"t":3,"a":1}',
+    ]
+    rows, bad = feed_all(p, b"\n".join(lines) + b"\n")
+    assert bad == 2
+    np.testing.assert_array_equal(rows, [[3, 1]])
+
+
+def test_json_only_numbers_are_numbers():
+    # RFC 8259 section 6: a number is digits, fraction, exponent; true/"0.9"/null are other
+    # types. NaN/Infinity are not JSON at all (Python's json accepts them unless told not to).
+    p = LineParser("json", needed=["t", "a"])
+    lines = [b'{"t":1,"a":true}', b'{"t":1,"a":"0.9"}', b'{"t":1,"a":null}', b'{"t":1,"a":NaN}',
+             b'{"t":1,"a":Infinity}', b'{"t":1,"a":1e999}', b'{"t":1,"t":5,"a":1}',
+             b'{"t":1,"a":0.25,"x":true}']
+    rows, bad = feed_all(p, b"\n".join(lines) + b"\n")
+    assert bad == 7
+    np.testing.assert_array_equal(rows, [[1, 0.25]])
+
+
+def test_kv_numbers_are_ascii_decimals_and_names_unique():
+    p = LineParser("kv", needed=["t", "a"])
+    data = "t=1 a=1_0\nt=1 a=\u0661\u0662\nt=1 a=2 t=9\nt=1 a=nan\nt=2;a=+.5\n".encode()
+    rows, bad = feed_all(p, data)
+    assert bad == 4  # float() would take 1_0 as 10 and Arabic-Indic digits as 12 (PEP 515)
+    np.testing.assert_array_equal(rows, [[2, 0.5]])
+
+
+def test_max_line_bytes_holds_in_a_clean_block():
+    long_row = b"1," + b"0" * 300 + b"\n"  # a 303-byte row of numbers, nothing else wrong
+    data = b"t,a\n" + b"0,1\n" * 1000 + long_row + b"2,3\n" * 1000
+    for reader in ("numpy", "pyarrow"):
+        rows, bad = feed_all(LineParser("csv", max_line_bytes=256, reader=reader), data)
+        assert bad == 1 and rows.shape[0] == 2000
+
+
+def test_a_line_longer_than_the_read_block_is_counted_once():
+    data = b"t,a\n" + b"0,1\n" * 500 + b"7" * (3 << 20) + b"\n" + b"2,3\n" * 500
+    p = LineParser("csv", max_line_bytes=4096)
+    step = 1 << 20
+    rows, bad = feed_all(p, data, cuts=list(range(step, len(data), step)))
+    assert bad == 1 and rows.shape[0] == 1000
+    assert p.examples == ["line 502: longer than 4096 bytes, dropped"]  # header is line 1
+
+
+def test_a_header_that_comes_mid_stream_is_taken_up():
+    # no `columns`: a board that starts mid-way, then resets and prints its header
+    data = b"5,1,2\n6,1,2\nt,a,b\n0,1,2\n1,2,3\nt,a,b\n2,3,4\nt,x,y\n3,4,5\n"
+    p = LineParser("csv", needed=["t", "a"])
+    rows, bad = feed_all(p, data, cuts=[7, 20])
+    assert p.columns == ["t", "a", "b"]
+    assert bad == 3  # two lines before the header, one header naming other columns
+    assert p.repeated_headers == 1
+    np.testing.assert_array_equal(rows[:, 0], [0, 1, 2, 3])
+
+
+def test_cr_only_line_ends_make_one_bad_line():
+    p = LineParser("csv", columns=["t", "a"])
+    rows, bad = feed_all(p, b"0,1\r1,2\r\n2,3\r\n")
+    assert bad == 1
+    np.testing.assert_array_equal(rows, [[2, 3]])

@@ -153,7 +153,8 @@ def test_deferred_quiet_channels_give_the_records_of_one_block():
     d["source"]["kind"] = "file"
     cfg = config_from_dict(d)
     cols = ["t", "c0", "c1", "c2", "c3"]
-    ref = Pipeline(cfg, cols).process(rows)
+    whole = Pipeline(cfg, cols)
+    ref = whole.process(rows) + whole.finish()
     rng = np.random.default_rng(11)
     pipe = Pipeline(cfg, cols)
     out: list[dict] = []

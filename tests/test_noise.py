@@ -8,7 +8,11 @@ against theory name their source beside them.
 
 from __future__ import annotations
 
+import json
 import math
+import subprocess
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -23,6 +27,9 @@ from streamcond.core.noise import (
     NoiseTracker,
     estimate_noise,
 )
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tools"))
+from make_demo import FLOW_SIGMA_V  # noqa: E402  (the demo generator's noise figure)
 
 FS = 1000.0  # Hz
 SIGMA = 0.05  # kPa, the noise's true standard deviation
@@ -250,32 +257,39 @@ def test_bad_input_is_refused() -> None:
 
 
 def feed(tracker: NoiseTracker, x: np.ndarray, cuts: list[int]) -> tuple[np.ndarray, ...]:
-    """Feed x split at `cuts`; return global indices, sigmas and ν0s of all estimates."""
-    idx, sig, nu = [], [], []
+    """Feed x split at `cuts`; global indices, sigmas, ν0s, reliable flags, window sizes."""
+    idx, sig, nu, rel, win = [], [], [], [], []
     start = 0
     for stop in [*cuts, x.size]:
-        i, s, v = tracker.process(x[start:stop])
-        assert i.dtype == np.int64 and i.shape == s.shape == v.shape
-        idx.append(i + start)
-        sig.append(s)
-        nu.append(v)
+        u = tracker.process(x[start:stop])
+        assert u.idx.dtype == np.int64 and u.idx.shape == u.sigma.shape == u.nu0.shape
+        assert u.reliable.shape == u.idx.shape == u.samples.shape and len(u.reason) == u.idx.size
+        idx.append(u.idx + start)
+        sig.append(u.sigma)
+        nu.append(u.nu0)
+        rel.append(u.reliable)
+        win.append(u.samples)
         start = stop
-    return np.concatenate(idx), np.concatenate(sig), np.concatenate(nu)
+    return tuple(np.concatenate(v) for v in (idx, sig, nu, rel, win))
 
 
 def test_tracker_schedule_and_definition() -> None:
     x = LEVEL + white(6_000, np.random.default_rng(8)) + sine(6_000, 2.0)
     tr = NoiseTracker(FS, window_s=1.0, update_every=250)
     assert tr.window_n == 1000
-    idx, sig, nu = feed(tr, x, list(range(0, 6_000, 333)))
-    # Warm-up: first estimate at the sample that completes the first window, then every 250.
-    assert np.array_equal(idx, np.arange(999, 6_000, 250))
-    # Each estimate is the whole-array estimate of the window ending at that sample.
-    for i, s, v in zip(idx.tolist(), sig.tolist(), nu.tolist()):
-        ref = estimate_noise(x[i + 1 - 1000 : i + 1], FS)
-        assert (s, v) == (ref.sigma, ref.nu0_hz)
+    idx, sig, nu, rel, win = feed(tr, x, list(range(0, 6_000, 333)))
+    # Warm-up: the grid of every 250th sample reaching back from the first full window, from
+    # the first point with at least MIN_SAMPLES (250), then every 250.
+    assert np.array_equal(idx, np.arange(249, 6_000, 250))
+    # Each estimate is the whole-array estimate of the window ending at that sample (shorter
+    # before the first full window).
+    for i, s, v, r, w in zip(idx.tolist(), sig.tolist(), nu.tolist(), rel.tolist(), win.tolist()):
+        assert w == min(i + 1, 1000)
+        ref = estimate_noise(x[i + 1 - w : i + 1], FS)
+        assert (s, v, r) == (ref.sigma, ref.nu0_hz, ref.reliable)
     assert tr.samples_seen == 6_000
     assert NoiseTracker(FS, window_s=1.0).update_every == 100  # default window_n // 10
+    assert NoiseTracker(FS, window_s=1.0).first_n == 200  # the first of 1000 - j·100 >= 128
 
 
 def test_tracker_follows_a_noise_step_within_one_window() -> None:
@@ -285,9 +299,9 @@ def test_tracker_follows_a_noise_step_within_one_window() -> None:
     noise[step_at:] = 8.0 * white(n - step_at, rng)  # σ steps up to 8σ
     x = LEVEL + noise + sine(n, 5.0)
     tr = NoiseTracker(FS, window_s=2.0, update_every=100)
-    idx, sig, _ = feed(tr, x, list(range(0, n, 1000)))
+    idx, sig, _, _, _ = feed(tr, x, list(range(0, n, 1000)))
     wn = tr.window_n
-    before = idx < step_at  # windows entirely before the step
+    before = (idx < step_at) & (idx >= wn - 1)  # full windows entirely before the step
     after = idx >= step_at + wn - 1  # windows entirely after it
     assert before.sum() > 100 and after.sum() > 100
     # Truth: SIGMA before the step and 8·SIGMA after it, by construction.
@@ -303,7 +317,7 @@ def test_tracker_copy_is_independent() -> None:
     ra = a.process(x[2_345:])
     rb = b.process(x[2_345:])
     for u, v in zip(ra, rb):
-        assert np.array_equal(u, v)
+        assert np.array_equal(np.asarray(u), np.asarray(v))
     assert a.samples_seen == b.samples_seen == 5_000
 
 
@@ -318,8 +332,9 @@ CHUNK_X = (
 
 def test_tracker_reference_run_has_estimates() -> None:
     # Guard for the chunk-invariance property below: the reference produces many estimates.
-    idx, sig, _ = feed(NoiseTracker(FS, window_s=0.5, update_every=97), CHUNK_X, [])
-    assert idx.size == (4_000 - 500) // 97 + 1
+    tr = NoiseTracker(FS, window_s=0.5, update_every=97)
+    idx, sig, _, _, _ = feed(tr, CHUNK_X, [])
+    assert idx.size == (4_000 - tr.first_n) // 97 + 1
     assert np.all(np.abs(sig / SIGMA - 1) < 0.25)
 
 
@@ -342,3 +357,70 @@ def test_tracker_chunk_invariant_in_single_samples() -> None:
     ones = feed(NoiseTracker(FS, window_s=0.5, update_every=61), x, list(range(1, x.size)))
     for u, v in zip(whole, ones):
         assert np.array_equal(u, v)
+
+
+# ---------------------------------------------------------------------------------------------
+# The demo's pulse channel (issue 8): 0/3.2 V paddle-wheel pulses with contact bounce, a
+# 3-sample median prefilter, white noise of FLOW_SIGMA_V from the generator.
+
+DEMO = Path(__file__).resolve().parents[1]
+RECORDING = DEMO / "replay_data" / "orchard_pump.csv"
+CONFIG = DEMO / "config" / "orchard_pump.toml"
+TRUTH = DEMO / "replay_data" / "orchard_pump.truth.json"
+
+
+def _flow() -> tuple:
+    from streamcond.config import load_config
+    from streamcond.core.channel import build_filter
+    from streamcond.tune import pick_channel, read_channel
+
+    cfg = load_config(str(CONFIG))
+    ch = pick_channel(cfg, "flow")
+    data = read_channel(cfg, RECORDING, ch)  # as `tune` reads it
+    truth = json.loads(TRUTH.read_text())["flow"]
+    # The noise-free signal: each sample's level (the noise, 0.018 V, is 180 times smaller
+    # than the levels' distance, so the nearest level is the true one).
+    mid = (truth["high_v"] + truth["low_v"]) / 2
+    clean = np.where(data.raw > mid, truth["high_v"], truth["low_v"])
+    # The conditioned signal's own noise: filter(signal + noise) - filter(signal).
+    noise_c = data.y - build_filter(ch, data.fs).process(clean)
+    return data, clean, noise_c
+
+
+def test_demo_flow_noise_as_tune_measures_it() -> None:
+    data, clean, noise_c = _flow()
+    # tune's figure: estimate_noise on the conditioned channel (before this estimator: 1.6 V)
+    est = estimate_noise(data.yg, data.fs)
+    assert est.reliable
+    # Truth: the standard deviation of the noise the comparator sees (the median of 3 makes
+    # it smaller than the generator's 0.018 V: 1 - √3/π of the variance for white Gaussian
+    # noise away from the edges, the order statistics of three normals — from memory).
+    assert est.sigma == pytest.approx(float(noise_c.std()), rel=0.15)
+    # The unfiltered channel against the generator's own figure (tools/make_demo.py).
+    raw_est = estimate_noise(data.v, data.fs)
+    assert raw_est.reliable and raw_est.sigma == pytest.approx(FLOW_SIGMA_V, rel=0.15)
+
+
+def test_demo_flow_adaptive_band_counts_every_pulse(tmp_path: Path) -> None:
+    # An adaptive band on the flow channel, loose max_width (the case that once grew wider
+    # than the pulse and stopped the edges: 31 edges for 1,842 pulses).
+    text = CONFIG.read_text()
+    fixed = 'band = { low = 1.0, high = 2.3 }'
+    assert fixed in text
+    adaptive = 'band = { mode = "adaptive", center = 1.65, k = 6.0, window_s = 5.0, max_width = 3.0 }'
+    cfg = tmp_path / "flow_adaptive.toml"
+    cfg.write_text(text.replace(fixed, adaptive))
+    events = tmp_path / "events.jsonl"
+    run = subprocess.run(
+        [sys.executable, "-m", "streamcond", "replay", str(RECORDING), "-c", str(cfg),
+         "--events", str(events)],
+        capture_output=True, text=True, timeout=120,
+    )
+    assert run.returncode == 0, run.stderr
+    recs = [json.loads(line) for line in events.read_text().splitlines()]
+    rising = [r for r in recs if r["kind"] == "edge" and r["channel"] == "flow"
+              and r["edge"] == "rising"]
+    # Truth: the generator's pulse count (replay_data/orchard_pump.truth.json).
+    assert len(rising) == json.loads(TRUTH.read_text())["flow"]["pulses"]
+    stats = [r for r in recs if r["kind"] == "stats" and r["channel"] == "flow"]
+    assert stats and all(r["reliable"] for r in stats)

@@ -199,9 +199,9 @@ def test_progress_line_on_a_terminal():
             return True
 
     s = Tty()
-    p = Progress(10 << 20, stream=s, min_interval_s=0.0)
-    p.update(5 << 20, 1000)
-    p.update(10 << 20, 2000)
+    p = Progress(10 << 20, stream=s, min_interval_s=0.0, show_after_s=0.0)
+    p.update(5 << 20, 1000, 90.0)
+    p.update(10 << 20, 2000, 180.0)
     p.close()
     assert "50.0%" in s.getvalue() and "100.0%" in s.getvalue() and "rows/s" in s.getvalue()
     quiet = io.StringIO()

@@ -40,9 +40,13 @@ def test_windows_are_aligned_to_sample_time_and_count_crossings():
     t = np.arange(0, 35.0, 1 / FS) + 3.0  # starts mid-window: windows stay aligned to 10 s
     x = np.sin(2 * np.pi * 0.7 * t)
     recs = [r for r in run(base({"low": -0.5, "high": 0.5}), t, x) if r["kind"] == "stats"]
-    assert [(r["t"], r["t_end"]) for r in recs] == [(0.0, 10.0), (10.0, 20.0), (20.0, 30.0)]
+    # the last window, 30-38 s, is flushed at the end of the stream and marked partial
+    assert [(r["t"], r["t_end"]) for r in recs] == [(0.0, 10.0), (10.0, 20.0), (20.0, 30.0), (30.0, 38.0)]
+    assert [r.get("partial", False) for r in recs] == [False, False, False, True]
+    assert recs[-1]["samples"] == 8000
     assert recs[0]["samples"] == 7000 and recs[1]["samples"] == 10000
-    for r in recs[1:]:
+    assert abs(recs[-1]["raw_crossings"] - 2 * 0.7 * 8) <= 1  # same closed form over 8 s
+    for r in recs[1:-1]:
         assert abs(r["raw_crossings"] - 2 * 0.7 * 10) <= 1
         assert abs(r["edges"] - r["raw_crossings"]) <= 1
         # consecutive edges of a sine at ±0.5: arcsin spacing, closed form
@@ -100,4 +104,5 @@ def test_gap_leaves_no_empty_windows():
         ("gap", pytest.approx(12 - 1 / FS)),
         ("stats", 10.0),  # 10-12 s, closed by the first sample after the gap
         ("stats", 40.0),  # 45-50 s; the windows 20-40 s held no sample and give no record
+        ("stats", 50.0),  # 50-52 s: the last, partial window, flushed at the end
     ]

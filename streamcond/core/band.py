@@ -15,10 +15,13 @@ u at ν0·exp(−u²/2σ²) per second) puts at ν0·e^(−18) ≈ 1.5·10⁻⁸
 at the centre sees one threshold crossed only at ν0·e^(−4.5) ≈ 0.011·ν0. ``tune`` sizes the band
 for a stated false-edge rate instead.
 
-Warm-up (before the first estimate, one ``window_s`` of samples): the band is ``initial_width``
-if configured, otherwise ``min_width`` if that is above 0; with neither, the channel makes no
-decision (no ``state``, no edges) until the first estimate — an honest "not yet known" rather
-than a guess.
+Warm-up: the band is ``initial_width`` if configured until the first *reliable* estimate
+(which comes as soon as the estimator has enough samples for this noise, often well before a
+full ``window_s``); without ``initial_width`` the channel makes no decision at all (no
+``state``, no edges) until then — an honest "not yet known" rather than a guess. ``min_width``
+is a clamp on measured widths, not a guess for the start. An estimate that says it is not
+reliable (:attr:`~streamcond.core.noise.NoiseEstimate.reliable`) moves no band: the band
+keeps its last reliable width.
 """
 
 from __future__ import annotations
@@ -56,8 +59,8 @@ class AdaptiveBandStage:
         self.k = float(band.k)
         self.min_width = float(band.min_width)
         self.max_width = float(band.max_width) if band.max_width is not None else math.inf
-        w0 = band.initial_width if band.initial_width is not None else self.min_width
-        if w0 > 0:
+        w0 = band.initial_width
+        if w0 is not None and w0 > 0:
             self.low, self.high = self.center - w0 / 2.0, self.center + w0 / 2.0
         else:
             # no decisions before the first estimate: nothing is above +inf or below -inf

@@ -77,7 +77,7 @@ class ChannelConditioner:
         self.rise_s = float(cfg.dwell.rise_s)
         self.fall_s = float(cfg.dwell.fall_s)
         self.dwell = DwellState()
-        self._pending_noise: tuple[float, float] | None = None
+        self._pending_noise: tuple[float, float, bool, str | None, float] | None = None
         self.fault_limits = cfg.fault.limits if cfg.fault is not None else None
         self.in_fault = False
         self.fault_t0 = float("nan")
@@ -131,14 +131,17 @@ class ChannelConditioner:
             # an estimate that completed on the previous block's last sample
             events.append((0, 2, self._pending_noise))
             self._pending_noise = None
-        idx, sig, nu0 = self.noise.process(yg)
-        if good is not None:
-            idx = good[idx]
-        for i, s_, n_ in zip(idx.tolist(), sig.tolist(), nu0.tolist()):
+        upd = self.noise.process(yg)
+        idx = upd.idx if good is None else good[upd.idx]
+        for i, s_, n_, r_, why, m_ in zip(
+            idx.tolist(), upd.sigma.tolist(), upd.nu0.tolist(), upd.reliable.tolist(),
+            upd.reason, upd.samples.tolist(),
+        ):
+            est = (s_, n_, bool(r_), why, m_ * self.period)
             if i + 1 < n:
-                events.append((i + 1, 2, (s_, n_)))  # the estimate includes sample i
+                events.append((i + 1, 2, est))  # the estimate includes sample i
             else:
-                self._pending_noise = (s_, n_)  # applies from the next block's first sample
+                self._pending_noise = est  # applies from the next block's first sample
         for j in self.stats.boundaries(t):
             events.append((j, 0, None))
         events.sort(key=lambda e: (e[0], e[1]))
@@ -172,6 +175,37 @@ class ChannelConditioner:
                     out.append((k, RANK_MEASURE, m))
         return out
 
+    def finish(self, t_last: float) -> list[dict[str, Any]]:
+        """End of stream at sample time ``t_last``: the current window's stats and measure
+        records, covering the data up to one sample period past ``t_last``, marked partial."""
+        if self.stats.window is None:
+            return []
+        t0, t1 = self.stats.window_bounds()
+        t_end = min(t1, t_last + self.period)
+        fault_s = self.stats.fault_s
+        rec = self.stats.close_partial(t_end, self.band.low, self.band.high)
+        if rec is None:
+            return []
+        out = [rec]
+        if self.measure is not None:
+            lv = self.dwell.level
+            m = self.measure.close(t0, t_end, self.output_level(lv) if lv in (0, 1) else -1, fault_s)
+            if m is not None:
+                m["partial"] = True
+                out.append(m)
+        return out
+
+    def totals(self) -> dict[str, Any]:
+        """This channel's final totals: edges of this run, and the totalizer of a count measure."""
+        out: dict[str, Any] = {"edges": self.edges}
+        m = self.measure
+        if m is not None and m.spec.count:
+            out["total"] = m.total
+            if m.spec.pulses_per_unit is not None:
+                out["total_units"] = m.total / m.spec.pulses_per_unit
+                out["quantity_unit"] = m.spec.quantity_unit
+        return out
+
     def _fault_change(self, k: int, t: float, value: float, starts: bool) -> Tagged:
         lo, hi = self.fault_limits  # type: ignore[misc]
         st = self.dwell
@@ -182,18 +216,22 @@ class ChannelConditioner:
             st.prev_t = st.prev_x = float("nan")
             st.pend_class = -1
             why = f"at or below {lo:g}" if value <= lo else f"at or above {hi:g}"
-            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "start",
-                   "value": value, "reason": f"raw value {why}: a sensor fault, not a level"}
+            rec = records.fault_start(self.name, t, value, f"raw value {why}: a sensor fault, not a level")
         else:
             self.in_fault = False
-            rec = {"kind": records.FAULT, "channel": self.name, "t": t, "state": "end",
-                   "value": value, "duration_s": t - self.fault_t0}
+            rec = records.fault_end(self.name, t, value, t - self.fault_t0)
         return (k, RANK_FAULT, rec)
 
-    def _apply_noise(self, est: tuple[float, float], y: np.ndarray, k: int) -> None:
-        """A new noise estimate, in force from sample ``k`` of the block."""
-        sigma, nu0 = est
-        self.stats.noise(sigma, nu0)
+    def _apply_noise(
+        self, est: tuple[float, float, bool, str | None, float], y: np.ndarray, k: int
+    ) -> None:
+        """A new noise estimate, in force from sample ``k`` of the block. An estimate that is
+        not reliable moves no band: the band keeps its last reliable width (or, before the
+        first one, ``initial_width`` or no decision at all)."""
+        sigma, nu0, reliable, reason, window_s = est
+        self.stats.noise(sigma, nu0, reliable, reason, window_s)
+        if not reliable:
+            return
         last = y[k - 1] if k > 0 else self.dwell.prev_x
         self.band.propose(sigma, self.dwell.level, float(last))
 

@@ -67,9 +67,10 @@ import copy
 import math
 from typing import Any, Iterable
 
+from .. import records
 from ..config import RATE_PER_S, Measure
 
-MEASURE = "measure"
+MEASURE = records.MEASURE
 
 _REV_UNIT = {"s": "rev/s", "min": "rpm", "h": "rev/h"}
 
@@ -203,15 +204,14 @@ class MeasureTracker:
                     if per_edge:
                         f = 1.0 / p
                         out.append(
-                            {
-                                "kind": MEASURE,
-                                "channel": self.channel,
-                                "t": t,
-                                "period_s": p,
-                                "frequency_hz": f,
-                                "rate": f * self.rate_scale,
-                                "rate_unit": self.rate_unit,
-                            }
+                            records.measure(
+                                self.channel,
+                                t,
+                                period_s=p,
+                                frequency_hz=f,
+                                rate=f * self.rate_scale,
+                                rate_unit=self.rate_unit,
+                            )
                         )
                 elif not p <= 0.0:
                     # no previous rise, or stale in between: a new pulse train starts here
@@ -253,7 +253,7 @@ class MeasureTracker:
             ref = t_start
         rec: dict[str, Any] | None = None
         if spec.frequency or spec.duty or spec.count:
-            rec = {"kind": MEASURE, "channel": self.channel, "t": t_start, "t_end": t_end}
+            rec = records.measure(self.channel, t_start, t_end=t_end)
         if rec is not None and spec.frequency:
             stale = (t_end - ref) > self.stale_s
             n = self.periods.n

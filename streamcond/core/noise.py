@@ -61,24 +61,47 @@ adjacent pair gives a Richardson extrapolation in x = 1/(m - p) that removes the
 
     R(m₁, m₂) = (x₁·v(m₂) - x₂·v(m₁)) / (x₁ - x₂),   m₂ = 2·m₁.
 
-Scanning upward, the first of these decides:
+Scanning upward (at the longer lengths down to two segments, so that a short window still
+reaches segments long compared with a coloured noise's correlation time), the first of these
+decides:
 
-1. v itself has stopped growing (``|v(m₂) - v(m₁)| < 10 % of v(m₂)``): σ̂² = R(m₁, m₂). White
-   noise gets here at the first pair, whatever the signal does on longer time scales.
+1. v itself has stopped growing (``|v(m₂) - v(m₁)| < 10 % of v(m₂)``), and did not rise by more
+   than 30 % over the octave before (a noise on its way to σ² rises ever more slowly, so a flat
+   step right after a steep one is a fluctuation): σ̂² = R(m₁, m₂). White noise gets here at
+   the first pair, whatever the signal does on longer time scales.
 2. The extrapolation has converged (two consecutive R within 3 %): σ̂² = the later R.
 3. The relative changes of R, after shrinking below 50 % (noise regime, the 1/(m - p) law
-   taking hold), grow again: the signal's own movement is leaking into the longer segments;
-   σ̂² = the R before the growth (the flattest point).
-4. Out of record: the last R (the window was short for this noise's correlation time).
+   taking hold), grow again — at least doubling and beyond 15 %, as smaller wobbles are the
+   spread of a noise with a long correlation tail: the signal's own movement is leaking into
+   the longer segments; σ̂² = the R before the growth (the flattest point), trusted only if it
+   adds at most 60 % to the v measured there.
+4. Out of record: the last R (trusted only if its last change was under 10 %).
 
 Shortest first, because longer segments let more of the signal's curvature and more steps in.
 The signal must move slowly compared with the noise: over a segment of a few tens of noise
 correlation times it must look like a cubic (measured: Butterworth noise at fs/100 under a sine
-of ten times its σ is estimated within 3 % down to a 1 s sine period), and steps must be rarer
-than one per such segment (a pulse train stepping every 100 samples is fine on white noise,
-whose segments are 16-32 samples, but not on noise low-passed at fs/20, which needs ~256). No
-method of this kind can separate a noise whose spectrum reaches down to the signal's own time
-scale.
+of ten times its σ is estimated within 3 % down to a 1 s sine period). No method of this kind
+can separate a noise whose spectrum reaches down to the signal's own time scale.
+
+**Steps first.** Sharp steps — pulses, square waves, switching, a motor's start — are taken out
+before the segments are fitted (:func:`_destep`): a first difference far off the median of its
+neighbours is a step, its height is pooled with every other step of the same transition (the
+levels of a pulse train recur), and the record minus those steps keeps the noise whole across
+them, so that even a pulse train stepping every 4 samples under a noise correlated over 17 is
+measured right. Steps smaller than 10 robust sigmas of the differences are left to the votes.
+
+**Heavy tails.** The spike limit follows the standard deviation of the residuals it keeps
+(a fixed point of limit = 6·rms), not only their MAD, so a Student-t noise keeps most of its
+tails (its σ̂ is its standard deviation, about 0.9 of it at 3 degrees of freedom) while
+one-sample spikes of 10σ and more are still weighted out.
+
+**When the answer is not to be trusted** (``reliable = False`` and a reason): the scan ran out
+of record before settling, or a few long segments decided a coloured noise's σ̂ (fewer than
+four at the chosen length while v grew by more than 60 % from the shortest length) — "the
+window is too short for the noise's correlation time"; or v leapt between two lengths, up to
+one past the chosen one (:func:`_leap`) — "the signal moves on the noise's own time scale".
+The figures are still returned (the best the window allows), and every caller must read the
+flag: the adaptive band keeps its last reliable width, the stats say so.
 
 **ν0 from the same residual, without the separation distorting it.** For a sampled Gaussian
 sequence the probability of an up-crossing of the mean between two samples is the bivariate
@@ -118,6 +141,7 @@ import functools
 import logging
 import math
 from dataclasses import dataclass
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -127,6 +151,7 @@ __all__ = [
     "MIN_SAMPLES",
     "NoiseEstimate",
     "NoiseTracker",
+    "NoiseUpdates",
     "estimate_noise",
 ]
 
@@ -143,10 +168,19 @@ _P = 4
 _M_MIN = 16
 #: Fewest segments at any length, so that the votes across segments mean something.
 _K_MIN = 8
+#: Fewest segments at the longer lengths of the scan (a short window needs long segments
+#: for a coloured noise, and few of them fit).
+_K_LONG = 2
+#: Fewest segments for the votes across segments to be taken.
+_K_VOTE = 4
 #: Fewest samples :func:`estimate_noise` accepts (one length, _K_MIN segments of _M_MIN).
 MIN_SAMPLES: int = _M_MIN * _K_MIN
 #: A sample whose residual exceeds this many pilot sigmas is a spike (weight 0).
 _SPIKE_Z = 5.0
+#: The spike limit in standard deviations of the kept residual (heavy tails), and its cap in
+#: multiples of the MAD-based limit.
+_TAIL_Z = 6.0
+_TAIL_CAP = 3.0
 #: At most this many rounds of spike flagging and refitting.
 _REFITS = 4
 #: Segments whose log-variance lies this many robust sigmas from the median are dropped.
@@ -155,11 +189,117 @@ _SEGMENT_Z = 4.0
 _STEP_FACTOR = 6.0
 #: Relative change of v between adjacent lengths that counts as "v has stopped growing".
 _PLATEAU = 0.10
+#: A renewed growth of the extrapolation's changes counts as the signal leaking in when the
+#: change at least doubles and exceeds 15 % (smaller wobbles are the spread of a noise with
+#: a long correlation tail, whose v keeps creeping up over many octaves).
+_REGROW = 2.0
+_RTOL_LEAK = 0.15
+#: Out of record with the last change of the extrapolation below this: nearly converged.
+_OUT_RTOL = 0.10
+#: Growth of v over the octave before that still allows a plateau.
+_STEADY = 1.3
 #: Relative change between consecutive extrapolations that counts as "converged".
 _RTOL = 0.03
 #: Below this relative change of the extrapolation the noise regime has been reached, and a
 #: renewed growth means the signal leaks in.
 _CONVERGING = 0.5
+#: Fewest segments at the chosen length for an answer called reliable (with fewer, one
+#: segment's share of a coloured noise decides: a spread the votes cannot check).
+_K_RELIABLE = 4
+#: A "flattest point" answer is trusted when it adds at most this factor to the measured v.
+_FLAT_GAIN = 1.6
+#: An implausible jump of v between adjacent lengths (see _leap).
+_LEAP = 8.0
+_LEAP_SHARE = 0.6
+#: A first difference standing this many robust sigmas off its local median is a step
+#: candidate (steps smaller than this are left to the segment votes).
+_STEP_Z = 10.0
+#: Two step heights agree (the same transition of a multi-level signal) when they differ by
+#: less than this many robust sigmas of the local height error.
+_HEIGHT_Z = 5.0
+
+
+@dataclass(frozen=True)
+class _Steps:
+    """Sharp steps found in a record and taken out of it."""
+
+    n: int  # steps removed
+    pooled: float  # median number of steps whose height each step's estimate pools
+    min_gap: int  # fewest samples between two consecutive steps (n if fewer than two)
+
+
+def _neighbour_median(d: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Median of each sample's four neighbours (two each side, itself left out; edges: the
+    nearest full neighbourhood). Leaving the sample out keeps d_i - median from being exactly
+    0 whenever d is locally monotone (a smooth noise), which would make its MAD 0."""
+    if d.size < 5:
+        return np.full(d.size, float(np.median(d)) if d.size else 0.0)
+    a, b, c, e = d[:-4], d[1:-3], d[3:-1], d[4:]
+    # median of four = (sum - max - min)/2, elementwise (no sort)
+    hi = np.maximum(np.maximum(a, b), np.maximum(c, e))
+    lo = np.minimum(np.minimum(a, b), np.minimum(c, e))
+    med = 0.5 * (((a + b) + (c + e)) - hi - lo)
+    return np.concatenate((np.full(2, med[0]), med, np.full(2, med[-1])))
+
+
+def _destep(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], _Steps]:
+    """Take sharp steps (level shifts from one sample to the next) out of the record.
+
+    Steps, pulses and switching transients are signal, however dense. Noise flat to B Hz
+    changes little from one sample to the next when B is well below fs/2 (Var Δn = 2σ²(1 - ρ₁)),
+    while a step puts its whole height into one first difference. A first difference d_i that
+    stands more than :data:`_STEP_Z` robust sigmas off the median of its five neighbours (which
+    follows the slope of a smooth signal) is a step of height h_i = d_i - median; two adjacent
+    candidates of opposite sign that cancel are a one-sample spike, left to the segment fit's
+    spike weights. The step's local height carries the noise of one difference (error about
+    the robust scale s of d - median); a multi-level signal (pulses, a square wave, a telegraph
+    signal) repeats the same transition many times, so each height is replaced by the mean of
+    all heights that agree with it within :data:`_HEIGHT_Z`·√2·s (the same transition seen
+    again), which shrinks that error by the square root of their number. The record minus the
+    cumulative sum of the heights is the noise plus the smooth part of the signal, with the
+    noise's correlation intact across the steps (a fit broken at each step would absorb the
+    slow part of a coloured noise between them).
+    """
+    n = a.size
+    d = a[1:] - a[:-1]
+    e = d - _neighbour_median(d)
+    ae = np.abs(e)
+    k = ae.size // 2
+    # the upper median (np.partition: cheaper than np.median, and a scale needs no average)
+    s = MAD_TO_SIGMA * float(np.partition(ae, k)[k])
+    none = _Steps(0, 0.0, n)
+    if not s > 0:
+        return a, none
+    cand = ae > _STEP_Z * s
+    if not cand.any():
+        return a, none
+    # one-sample spikes: adjacent candidates that (nearly) cancel
+    both = cand[:-1] & cand[1:]
+    tol = _HEIGHT_Z * math.sqrt(2.0) * s
+    spike = both & (np.abs(e[:-1] + e[1:]) <= np.maximum(tol, 0.25 * np.abs(e[:-1])))
+    drop = np.zeros(cand.size, dtype=bool)
+    drop[:-1] |= spike
+    drop[1:] |= spike
+    idx = np.flatnonzero(cand & ~drop)
+    if idx.size == 0:
+        return a, none
+    h = e[idx]
+    # pool the heights that agree (sorted: each one's agreeing range by two searches)
+    order = np.argsort(h, kind="stable")
+    hs = h[order]
+    lo = np.searchsorted(hs, hs - tol, side="left")
+    hi = np.searchsorted(hs, hs + tol, side="right")
+    csum = np.concatenate(([0.0], np.cumsum(hs)))
+    count = hi - lo
+    pooled = np.empty(h.size)
+    pooled[order] = (csum[hi] - csum[lo]) / count
+    jumps = np.zeros(n)
+    jumps[idx + 1] = pooled
+    gaps = idx[1:] - idx[:-1]
+    info = _Steps(
+        int(idx.size), float(np.median(count)), int(gaps.min()) if gaps.size else n
+    )
+    return a - np.cumsum(jumps), info
 
 
 @dataclass(frozen=True)
@@ -170,6 +310,25 @@ class NoiseEstimate:
     """Robust noise standard deviation, in the signal's units."""
     nu0_hz: float
     """Zero (mean) up-crossing rate of the noise residual, per second."""
+    reliable: bool = True
+    """Could the window separate the noise from the signal? When False, ``sigma`` and
+    ``nu0_hz`` are the best the window allows but must not be trusted (see ``reason``)."""
+    reason: str | None = None
+    """Why the estimate is not reliable (a short sentence), None when it is."""
+
+
+def _median(a: NDArray[np.float64], axis: int | None = None) -> Any:
+    """np.median without its overhead (no NaN check; the samples are finite by contract):
+    the mean of the two middle order statistics for an even count, by np.partition."""
+    if axis is None:
+        a = a.ravel()
+        axis = 0
+    n = a.shape[axis]
+    k = n // 2
+    if n % 2:
+        return np.take(np.partition(a, k, axis=axis), k, axis=axis)
+    p = np.partition(a, (k - 1, k), axis=axis)
+    return 0.5 * (np.take(p, k - 1, axis=axis) + np.take(p, k, axis=axis))
 
 
 @functools.lru_cache(maxsize=32)
@@ -257,8 +416,8 @@ def _vote(z: NDArray[np.float64], valid: NDArray[np.bool_]) -> NDArray[np.bool_]
     if not valid.any():
         return out
     vals = z[valid]
-    med = float(np.median(vals))
-    spread = MAD_TO_SIGMA * float(np.median(np.abs(vals - med)))
+    med = float(_median(vals))
+    spread = MAD_TO_SIGMA * float(_median(np.abs(vals - med)))
     out[valid] = np.abs(vals - med) <= _SEGMENT_Z * spread
     return out
 
@@ -268,8 +427,24 @@ def _scale_fit(x: NDArray[np.float64], m: int) -> _Scale:
     k = x.size // m
     y = x[x.size - k * m :].reshape(k, m)
     r0 = _fit_residual(y, None, m)
-    pilot = MAD_TO_SIGMA * float(np.median(np.median(np.abs(r0), axis=1)))
+    pilot = MAD_TO_SIGMA * float(_median(_median(np.abs(r0), axis=1)))
     limit = _SPIKE_Z * pilot
+    # Heavy-tailed noise (a Student t) has a MAD well below its standard deviation, and
+    # 5 pilot sigmas would trim much of its variance; the limit follows the standard deviation
+    # of what it keeps instead (a fixed point of limit = _TAIL_Z·rms(|r| <= limit), rms
+    # corrected for the fit's p degrees of freedom), capped at _TAIL_CAP times the pilot's limit
+    # so that a segment full of step residuals cannot carry it away.
+    sq = r0 * r0
+    for _ in range(3):
+        kept = sq <= limit * limit
+        cnt = int(np.count_nonzero(kept))
+        if cnt == 0:
+            break
+        rms = math.sqrt(float(np.sum(sq, where=kept)) / cnt / (1.0 - _P / m))
+        new = min(max(_TAIL_Z * rms, _SPIKE_Z * pilot), _TAIL_CAP * _SPIKE_Z * pilot)
+        if new == limit:
+            break
+        limit = new
     w = np.abs(r0) <= limit
     # Hard-rejection reweighting: a spike drags the unweighted fit and with it the residuals
     # of its neighbours, so flags are recomputed from the refit (a wrongly flagged clean
@@ -309,9 +484,9 @@ def _scale_fit(x: NDArray[np.float64], m: int) -> _Scale:
     tail = csum[:, -1:] - csum[:, :-1]
     step = np.max(tail * tail / _basis(m)[2], axis=1)
     keep = ok.copy()
-    if ok.any():
+    if ok.sum() >= _K_VOTE:  # votes across fewer segments would mean nothing
         keep &= _vote(np.log(s2, where=ok, out=np.zeros_like(s2)), ok)
-        keep &= step <= _STEP_FACTOR * float(np.median(step[ok]))
+        keep &= step <= _STEP_FACTOR * float(_median(step[ok]))
     v = float(rss[keep].sum() / dof[keep].sum()) if keep.any() else 0.0
     return _Scale(m=m, v=v, r=r, w=w, keep=keep)
 
@@ -327,40 +502,77 @@ def _richardson(lo: _Scale, hi: _Scale) -> float:
 
 def _diff_sigma(sc: _Scale) -> float:
     """Robust standard deviation of the residual's first differences (kept pairs only)."""
-    d = np.abs(np.diff(sc.r, axis=1))
+    d = np.abs(sc.r[:, 1:] - sc.r[:, :-1])
     valid = sc.w[:, 1:] & sc.w[:, :-1] & sc.keep[:, None]
     if not valid.any():
         return 0.0
-    return MAD_TO_SIGMA * float(np.median(d[valid]))
+    return MAD_TO_SIGMA * float(_median(d[valid]))
 
 
-def _select(a: NDArray[np.float64], first: _Scale) -> tuple[float, _Scale]:
+def _select(
+    a: NDArray[np.float64], first: _Scale, vs: list[float]
+) -> tuple[float, _Scale, str]:
     """Scan dyadic segment lengths and pick σ² (see module docstring).
 
-    Returns σ² and the scale whose residual serves for ν0 (the longer of the chosen pair).
+    ``vs`` receives v at every length scanned, shortest first. Returns σ², the scale whose
+    residual serves for ν0 (the longer of the chosen pair) and how the scan ended: "plateau", "converged", "flattest", "out" (out of record) or "single" (one
+    length only).
     """
     rs: list[float] = []  # rs[j]: Richardson estimate from lengths j and j + 1
     ds: list[float] = []  # ds[j - 1]: relative change from rs[j - 1] to rs[j]
     lo = first
-    while a.size // (2 * lo.m) >= _K_MIN:
+    vs.append(first.v)
+    while a.size // (2 * lo.m) >= _K_LONG:
         hi = _scale_fit(a, 2 * lo.m)
+        vs.append(hi.v)
         rs.append(_richardson(lo, hi))
-        if hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v:
-            return rs[-1], hi  # v itself is flat: the segments are long enough already
+        steady = len(vs) < 3 or vs[-2] <= _STEADY * vs[-3]
+        if hi.v > 0 and abs(hi.v - lo.v) < _PLATEAU * hi.v and steady:
+            # v itself is flat: the segments are long enough. (Not right after a steep rise:
+            # a noise on its way to σ² rises ever more slowly, ≈ σ²(1 - c/(m - p)), so a
+            # flat step after a steep one is a fluctuation, not the plateau.)
+            return rs[-1], hi, "plateau"
         if len(rs) >= 2:
             ds.append(abs(rs[-1] - rs[-2]) / rs[-1] if rs[-1] > 0 else math.inf)
             if ds[-1] < _RTOL:
-                return rs[-1], hi  # the extrapolation has converged
-            if len(ds) >= 2 and ds[-2] < _CONVERGING and ds[-1] > ds[-2]:
+                return rs[-1], hi, "converged"  # the extrapolation has converged
+            if len(ds) >= 2 and ds[-2] < _CONVERGING and ds[-1] > max(_REGROW * ds[-2], _RTOL_LEAK):
                 # The changes were shrinking (noise regime) and grow again: the signal's own
                 # movement leaks into the longer segments. Take the flattest point before it.
                 logger.debug("noise: extrapolation flattest at m=%d", lo.m)
-                return rs[-2], lo
+                # Trusted only where the extrapolation adds little to what was measured at
+                # that length: beyond that it rests on the 1/(m - p) law, which the scan has
+                # not shown to hold (a noise with a long correlation tail keeps v growing).
+                ok = rs[-2] <= _FLAT_GAIN * lo.v
+                return rs[-2], lo, "flattest" if ok else "unsettled"
         lo = hi
     if not rs:  # too short for two lengths: one length, no colour correction
-        return first.v, first
-    # Out of record while the changes were still shrinking: the longest pair is the best.
-    return rs[-1], lo
+        return first.v, first, "single"
+    # Out of record while the changes were still shrinking: the longest pair is the best —
+    # trusted when the last change was already small (nearly converged).
+    if ds and ds[-1] < _OUT_RTOL:
+        return rs[-1], lo, "nearly"
+    return rs[-1], lo, "out"
+
+
+def _leap(vs: list[float], sigma2: float, v_ref: float) -> bool:
+    """Does v leap between two adjacent lengths, up to one past the chosen one?
+
+    ``vs`` are v at the lengths scanned, up to one past the chosen scale (whose v is
+    ``v_ref``). A noise's v(m) approaches σ² gradually — v ≈ σ²(1 - c/(m - p)) at long m, so
+    from one length to the next it at most doubles once it holds a sizeable share of σ² —
+    while a smooth signal that the cubic stops following at some length leaks in at once (its
+    residual grows as m⁴, its variance as m⁸). Two signs of that leak: a jump of more than
+    :data:`_LEAP` times onto a level above :data:`_LEAP_SHARE` of the chosen σ² (the plateau
+    after it is the signal's own variance), or such a jump right after the chosen length (the
+    signal starts leaking where the noise has only just been reached: no separation).
+    Measured on the matrix, noise alone never jumps more than about 2× into the last 40 % of
+    its σ², nor 8× beyond the length the scan chooses.
+    """
+    for v1, v2 in zip(vs[:-1], vs[1:]):
+        if v2 > _LEAP * v1 and v2 > _LEAP_SHARE * sigma2:
+            return True
+    return len(vs) >= 2 and vs[-2] == v_ref and vs[-1] > _LEAP * v_ref
 
 
 def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
@@ -368,8 +580,9 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
 
     Method and formulas in the module docstring. ``x`` is a 1-D array of at least
     :data:`MIN_SAMPLES` finite samples at ``sample_rate_hz``. A record without any variation
-    gives ``NoiseEstimate(0.0, 0.0)``. Records shorter than 256 samples allow only one segment
-    length, so the coloured-noise correction is skipped (exact for white noise only).
+    gives ``NoiseEstimate(0.0, 0.0)``. The result's ``reliable`` says whether the record could
+    separate the noise from the signal (``reason`` says why not); read it before using
+    ``sigma``: an unreliable figure is the best the record allows, not a measurement.
     """
     fs = float(sample_rate_hz)
     if not (math.isfinite(fs) and fs > 0):
@@ -384,39 +597,74 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
     if not np.isfinite(a).all():
         raise ValueError("The noise estimate needs finite samples (split the record at gaps).")
 
+    a, steps = _destep(a)
     # Variation within a few units in the last place of the samples is rounding in the fit,
     # not noise that could be measured.
     floor = (16.0 * np.finfo(np.float64).eps * float(np.max(np.abs(a)))) ** 2
     first = _scale_fit(a, _M_MIN)
     if first.v <= floor:
         return NoiseEstimate(0.0, 0.0)
-    sigma2, ref = _select(a, first)
+    vs: list[float] = []
+    sigma2, ref, how = _select(a, first, vs)
     if not sigma2 > floor:
         return NoiseEstimate(0.0, 0.0)
     sd = _diff_sigma(ref)
     rho1 = min(1.0, max(-1.0, 1.0 - sd * sd / (2.0 * sigma2)))
     nu0 = fs * math.acos(rho1) / (2.0 * math.pi)
-    return NoiseEstimate(sigma=math.sqrt(sigma2), nu0_hz=nu0)
+    logger.debug("noise: n=%d steps=%s scan=%s", a.size, steps, how)
+    reliable, reason = True, None
+    # few long segments decide a coloured noise's σ̂ (v grew well beyond the shortest length)
+    few = (
+        how != "plateau" and a.size // ref.m < _K_RELIABLE and sigma2 > _FLAT_GAIN * first.v
+    )
+    if how in ("out", "unsettled") or few:
+        reliable = False
+        reason = "the window is too short for the noise's correlation time"
+    elif how == "single":
+        reliable = False
+        reason = "the window is too short for a colour correction"
+    elif _leap(vs[: int(round(math.log2(ref.m / _M_MIN))) + 2], sigma2, ref.v):
+        reliable = False
+        reason = "the signal moves on the noise's own time scale"
+    return NoiseEstimate(sigma=math.sqrt(sigma2), nu0_hz=nu0, reliable=reliable, reason=reason)
 
 
 _NO_IDX = np.empty(0, dtype=np.int64)
 _NO_VAL = np.empty(0, dtype=np.float64)
 _NO_IDX.flags.writeable = False
 _NO_VAL.flags.writeable = False
+_NO_BOOL = np.empty(0, dtype=bool)
+_NO_BOOL.flags.writeable = False
+
+
+class NoiseUpdates(NamedTuple):
+    """The estimates one block of a :class:`NoiseTracker` completed (all empty when none)."""
+
+    idx: NDArray[np.int64]
+    """Indices into the block of the samples at which each estimate becomes available (it
+    uses the window of samples up to and including ``idx``)."""
+    sigma: NDArray[np.float64]
+    nu0: NDArray[np.float64]
+    reliable: NDArray[np.bool_]
+    reason: list[str | None]
+    samples: NDArray[np.int64]
+    """Samples in each estimate's window (fewer than ``window_n`` during the warm-up)."""
 
 
 class NoiseTracker:
     """Streaming noise estimate over a sliding window, chunk-invariant.
 
     Keeps the last ``window_n = round(window_s * sample_rate_hz)`` samples. Counting samples
-    from 1 over the tracker's life, it evaluates :func:`estimate_noise` on the window that ends
-    with sample number ``n = window_n + j * update_every`` (j = 0, 1, 2, ...): the first estimate
-    comes once a full window has been seen (warm-up; a shorter window would mix a different,
-    noisier estimator into the start), then one every ``update_every`` samples (default
-    ``window_n // 10``, at least 1). The schedule depends only on the sample count and each
-    estimate only on the window's samples, so any split of the input into blocks gives
-    identical results, bit for bit. Cost: one whole-window estimate per ``update_every``
-    samples; in between, an amortised O(1) copy per sample.
+    from 1 over the tracker's life, it evaluates :func:`estimate_noise` at the sample numbers
+    ``n = window_n + j * update_every`` (j = ..., -2, -1, 0, 1, 2, ...; ``update_every``
+    defaults to ``window_n // 10``, at least 1) that are at least :data:`MIN_SAMPLES`, on the
+    last ``min(n, window_n)`` samples. The first estimate thus comes as soon as the
+    estimator has enough samples (warm-up: a shorter window than configured, whose estimate
+    says itself whether it is reliable — a coloured noise needs a long one), and from the
+    first full window on every estimate covers ``window_n`` samples. The schedule depends only
+    on the sample count and each estimate only on its window's samples, so any split of the
+    input into blocks gives identical results, bit for bit. Cost: one estimate per
+    ``update_every`` samples; in between, an amortised O(1) copy per sample.
     """
 
     def __init__(
@@ -447,6 +695,8 @@ class NoiseTracker:
         self.window_s = float(window_s)
         self.window_n = window_n
         self.update_every = int(update_every)
+        #: the first scheduled sample number: the earliest of the grid with MIN_SAMPLES
+        self.first_n = window_n - ((window_n - MIN_SAMPLES) // self.update_every) * self.update_every
         self._count = 0  # samples seen so far
         # History: the valid samples are _store[:_fill], the newest last; the capacity of
         # 2·window_n lets small blocks be appended in place, compacting once per window_n.
@@ -458,31 +708,23 @@ class NoiseTracker:
         """Number of samples processed so far."""
         return self._count
 
-    def process(
-        self, x: ArrayLike
-    ) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
-        """Feed one block; return ``(idx, sigma, nu0)`` for the estimates it completes.
-
-        ``idx`` are int64 indices into this block of the samples at which a new estimate
-        becomes available (the estimate uses the window of samples up to and including
-        ``idx``); ``sigma`` (signal units) and ``nu0`` (Hz) are the estimates. All three are
-        empty when the block completes none.
-        """
+    def process(self, x: ArrayLike) -> NoiseUpdates:
+        """Feed one block; return the estimates it completes (:class:`NoiseUpdates`)."""
         a = np.asarray(x, dtype=np.float64).ravel()
         if not np.isfinite(a).all():
             raise ValueError("The noise tracker needs finite samples (split the stream at gaps).")
-        wn, every = self.window_n, self.update_every
+        wn, every, n_first = self.window_n, self.update_every, self.first_n
         n0 = self._count
         n1 = n0 + a.size
-        # Sample numbers n in (n0, n1] with n >= wn and (n - wn) % every == 0.
-        first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
+        # Sample numbers n in (n0, n1] with n >= n_first and (n - n_first) % every == 0.
+        first = n_first if n0 < n_first else n_first + ((n0 - n_first) // every + 1) * every
         if first > n1 and a.size <= wn and self._fill + a.size <= self._store.size:
             # no estimate due in this (short) block: just keep the samples (the common case
             # for a live block of a few milliseconds)
             self._store[self._fill : self._fill + a.size] = a
             self._fill += a.size
             self._count = n1
-            return _NO_IDX, _NO_VAL, _NO_VAL
+            return NoiseUpdates(_NO_IDX, _NO_VAL, _NO_VAL, _NO_BOOL, [], _NO_IDX)
         due = np.arange(first, n1 + 1, every, dtype=np.int64)
 
         if a.size <= wn:
@@ -501,13 +743,17 @@ class NoiseTracker:
 
         sigma = np.empty(due.size, dtype=np.float64)
         nu0 = np.empty(due.size, dtype=np.float64)
-        for j, n in enumerate(due.tolist()):  # one whole-window estimate per scheduled update
+        rel = np.empty(due.size, dtype=bool)
+        why: list[str | None] = []
+        for j, n in enumerate(due.tolist()):  # one estimate per scheduled update
             end = n - base
-            est = estimate_noise(np.array(ext[end - wn : end]), self.sample_rate_hz)
+            est = estimate_noise(np.array(ext[end - min(n, wn) : end]), self.sample_rate_hz)
             sigma[j] = est.sigma
             nu0[j] = est.nu0_hz
+            rel[j] = est.reliable
+            why.append(est.reason)
         self._count = n1
-        return due - (n0 + 1), sigma, nu0
+        return NoiseUpdates(due - (n0 + 1), sigma, nu0, rel, why, np.minimum(due, wn))
 
     def copy(self) -> NoiseTracker:
         """An independent tracker in the same state."""

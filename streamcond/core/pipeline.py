@@ -16,8 +16,10 @@ from typing import Any
 
 import numpy as np
 
+from .. import records
 from ..config import Config
 from ..errors import ConfigError
+from ..io.lineparse import HOST_T
 from .channel import ChannelConditioner
 from .timebase import Timebase
 
@@ -44,6 +46,9 @@ class Pipeline:
             self.time_col = col_index[src.time_column] if src.time_column else None
             scale = src.time_scale
         self.chan_cols = [col_index[ch.source_column] for ch in cfg.channel]
+        # host receive times (live, and captures): the wall-clock stamp (``utc``) of records
+        self.host_col: int | None = col_index.get(HOST_T)
+        self.last_host_t = float("nan")
         self.timebase = Timebase(
             time_scale=scale,
             sample_rate_hz=src.sample_rate_hz,
@@ -147,6 +152,10 @@ class Pipeline:
         self.samples += int(t.size)
         if len(tagged) > 1:
             tagged.sort(key=lambda r: (r[0], r[1], r[2]))
+        if self.host_col is not None and t.size:
+            host = rows[:, self.host_col]
+            self.last_host_t = float(host[-1])
+            _stamp(tagged, t, host, base)
         return [r[3] for r in tagged]
 
     def _quiet_channels(self, t: np.ndarray, rows: np.ndarray) -> list[bool]:
@@ -275,6 +284,13 @@ class Pipeline:
                 return True
         return False
 
+    def host_to_sample_time(self, host_t: float) -> float | None:
+        """The sample time of a host clock reading (live: a device lost or back), from the last
+        sample's pair of times; ``None`` before any sample."""
+        if not np.isfinite(self.last_t) or not np.isfinite(self.last_host_t):
+            return None
+        return self.last_t + (host_t - self.last_host_t)
+
     def finish(self) -> list[dict[str, Any]]:
         """End of stream: rows still held back for the period estimate are conditioned with
         the period estimated from what there is (a recording shorter than the estimate)."""
@@ -285,10 +301,34 @@ class Pipeline:
                 held, self._held = self._held, np.empty((0, len(self.columns)))
                 out = self.process(held)
                 self._drain()
-        if self._carry:
+        out.extend(self.flush())
+        return out
+
+    def flush(self) -> list[dict[str, Any]]:
+        """End of stream or clean stop: every channel's current, partial stats window (and its
+        measure record), marked ``partial``, so the last seconds are not lost. The windows start
+        afresh at the next sample."""
+        self._drain()  # the deferred samples belong in those windows
+        out: list[dict[str, Any]] = []
+        if self._carry:  # (none by construction: deferred samples emit nothing)
             carry, self._carry = sorted(self._carry, key=lambda r: (r[0], r[1], r[2])), []
             out.extend(r[3] for r in carry)
+        if not np.isfinite(self.last_t):
+            return out
+        for ch in self.channels or []:
+            out.extend(ch.finish(self.last_t))
+        if self.host_col is not None and np.isfinite(self.last_host_t):
+            for r in out:
+                records.with_utc(r, self.last_host_t + (r["t"] - self.last_t))
         return out
+
+    def totals(self) -> dict[str, dict[str, Any]]:
+        """Final totals per channel (the replay's ``summary``): edges of this run and, with a
+        count measure, the totalizer (rising edges over the life of the state)."""
+        out: dict[str, dict[str, Any]] = {}
+        for ch in self.channels or []:
+            out[ch.name] = ch.totals()
+        return out or {ch.name: {"edges": 0} for ch in self.cfg.channel}
 
     # -- state across restarts and reloads -----------------------------------------------------
     def restore(self, state: dict[str, dict[str, Any]]) -> None:
@@ -320,6 +360,7 @@ class Pipeline:
             self.timebase = old.timebase
             self._held = old._held
         self.samples, self.gaps, self.last_t = old.samples, old.gaps, old.last_t
+        self.last_host_t = old.last_host_t
         self._restore = {k: v for k, v in old.snapshot().items()}
         names = {c.name for c in self.cfg.channel}
         self._adopt = {c.name: c for c in (old.channels or []) if c.name in names}
@@ -340,3 +381,18 @@ class Pipeline:
         return {c.name: c.edges for c in self.channels or []} or {
             ch.name: 0 for ch in self.cfg.channel
         }
+
+
+def _stamp(tagged: list[tuple[int, int, int, dict[str, Any]]], t: np.ndarray, host: np.ndarray,
+           base: int = 0) -> None:
+    """``utc`` of every record: the wall-clock time of its ``t``, from the host receive time of
+    the sample at which it was emitted shifted by ``t`` minus that sample's time (records are
+    tagged with global sample indices; ``base`` is the block's first)."""
+    last = t.size - 1
+    for i, _, _, rec in tagged:
+        k = min(max(i - base, 0), last)
+        rt = rec.get("t")
+        h = float(host[k])
+        if isinstance(rt, float) and np.isfinite(rt):
+            h += rt - float(t[k])
+        records.with_utc(rec, h)

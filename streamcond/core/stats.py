@@ -13,7 +13,16 @@ Fields and where their numbers come from:
   raw_crossings / edges.
 * ``min_edge_spacing_s`` — the shortest time between consecutive edges ending in the window.
 * ``noise_sigma``, ``nu0_hz`` — the latest noise estimate (σ̂, zero up-crossing rate),
-  ``null`` until the first one.
+  ``null`` until the first one; ``noise_window_s`` the span of samples it was measured on
+  (the adaptive band's ``window_s``, or ``stats.noise_window_s`` for a fixed band — shorter
+  during the warm-up). ``tune`` measures σ̂ over the whole recording instead: on a stationary
+  noise the two agree within the estimate's spread; where the noise changes (a pump that
+  runs and stops) the whole-recording figure is a pooled one and the stats follow the
+  noise of the moment.
+* ``reliable`` — whether that estimate could separate the noise from the signal in its
+  window (``null`` before the first estimate); when ``false``, ``reliable_reason`` says why,
+  and ``margin_sigma`` and ``predicted_false_rate_per_hour`` are ``null`` (never a figure
+  from an estimate that says it cannot be trusted).
 * ``band_low``, ``band_high`` — the band in force at the window's end; ``margin_sigma`` =
   half-width / σ̂.
 * ``predicted_false_rate_per_hour`` — Rice's formula (S. O. Rice, Bell System Technical Journal,
@@ -65,6 +74,9 @@ class ChannelStats:
         self.activations: deque[float] = deque(maxlen=max(self.chatter_count, 1))
         self.sigma = math.nan
         self.nu0 = math.nan
+        self.reliable: bool | None = None
+        self.reason: str | None = None
+        self.noise_window_s = math.nan
 
     def _reset_counts(self) -> None:
         self.fault_samples = 0
@@ -116,34 +128,53 @@ class ChannelStats:
         self._reset_counts()
         return rec
 
+    def close_partial(self, t_end: float, low: float, high: float) -> dict[str, Any] | None:
+        """End of the stream inside the current window: its record so far, ``t_end`` the end of
+        the data, marked ``partial``; the next sample starts a window afresh."""
+        if self.window is None:
+            return None
+        rec = self._record(low, high) if (self.samples or self.fault_samples) else None
+        if rec is not None:
+            rec["t_end"] = t_end
+            rec["partial"] = True
+        self.window = None
+        self._reset_counts()
+        return rec
+
     def _record(self, low: float, high: float) -> dict[str, Any]:
         k = self.window
         half = (high - low) / 2.0
         sig, nu0 = self.sigma, self.nu0
-        margin = half / sig if sig > 0 and math.isfinite(half) else math.nan
-        if sig > 0 and nu0 >= 0 and math.isfinite(half):
+        trusted = self.reliable is True
+        margin = half / sig if trusted and sig > 0 and math.isfinite(half) else math.nan
+        if trusted and sig > 0 and nu0 >= 0 and math.isfinite(half):
             rate = nu0 * math.exp(-(half * half) / (2.0 * sig * sig)) * 3600.0
         else:
             rate = math.nan
-        return {
-            "kind": records.STATS,
-            "channel": self.channel,
-            "t": k * self.interval,
-            "t_end": (k + 1) * self.interval,
-            "samples": self.samples,
-            "raw_crossings": self.raw,
-            "edges": self.edges,
-            "suppression_ratio": (self.raw / self.edges) if self.edges else None,
-            "min_edge_spacing_s": self.min_spacing if math.isfinite(self.min_spacing) else None,
-            "noise_sigma": sig,
-            "nu0_hz": nu0,
-            "band_low": low,
-            "band_high": high,
-            "margin_sigma": margin,
-            "predicted_false_rate_per_hour": rate,
-            "chattering": self.chattering,
-            "fault_s": self.fault_s,
-        }
+        extra: dict[str, Any] = {}
+        if self.reliable is False:
+            extra["reliable_reason"] = self.reason
+        return records.stats(
+            self.channel,
+            k * self.interval,
+            (k + 1) * self.interval,
+            samples=self.samples,
+            raw_crossings=self.raw,
+            edges=self.edges,
+            suppression_ratio=(self.raw / self.edges) if self.edges else None,
+            min_edge_spacing_s=self.min_spacing if math.isfinite(self.min_spacing) else None,
+            noise_sigma=sig,
+            nu0_hz=nu0,
+            band_low=low,
+            band_high=high,
+            margin_sigma=margin,
+            predicted_false_rate_per_hour=rate,
+            chattering=self.chattering,
+            fault_s=self.fault_s,
+            reliable=self.reliable,
+            noise_window_s=self.noise_window_s,
+            **extra,
+        )
 
     # -- accumulation -------------------------------------------------------------------------
     def add_samples(self, v: np.ndarray) -> None:
@@ -173,8 +204,14 @@ class ChannelStats:
                 ):
                     self.chattering = True
 
-    def noise(self, sigma: float, nu0: float) -> None:
+    def noise(
+        self, sigma: float, nu0: float, reliable: bool = True, reason: str | None = None,
+        window_s: float = math.nan,
+    ) -> None:
+        """The latest noise estimate, over ``window_s`` seconds of samples."""
         self.sigma, self.nu0 = float(sigma), float(nu0)
+        self.reliable, self.reason = bool(reliable), reason
+        self.noise_window_s = float(window_s)
 
     def copy(self) -> "ChannelStats":
         new = copy.copy(self)

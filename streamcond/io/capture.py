@@ -28,25 +28,41 @@ MAGIC = b"# streamcond capture v1"
 
 
 def is_capture(path: str | Path) -> bool:
+    """A capture: text with the capture's first line, or a Parquet/Arrow file written by
+    ``record -o x.parquet`` or converted from a capture (it has the host time column)."""
     try:
         with open(path, "rb") as fh:
-            return fh.read(len(MAGIC)) == MAGIC
+            head = fh.read(len(MAGIC))
     except OSError:
         return False
+    if head == MAGIC:
+        return True
+    from .recording import ARROW_MAGIC, PARQUET_MAGIC
+
+    if head[:4] == PARQUET_MAGIC or head[:6] == ARROW_MAGIC:
+        from ..errors import InputError
+        from .columnar import has_host_time, is_columnar_capture
+
+        kind = "parquet" if head[:4] == PARQUET_MAGIC else "arrow"
+        try:
+            return is_columnar_capture(path, kind) or has_host_time(path, kind)
+        except InputError:
+            return False
+    return False
 
 
 class CaptureWriter:
     """Appends received lines with their host times to a capture file."""
 
-    def __init__(self, path: str | Path) -> None:
+    def __init__(self, path: str | Path, append: bool = False) -> None:
         p = Path(path)
+        fresh = not (append and p.exists() and p.stat().st_size)
         try:
-            if p.parent and not p.parent.exists():
-                p.parent.mkdir(parents=True, exist_ok=True)
-            self.fh: BinaryIO = open(p, "wb")
+            self.fh: BinaryIO = open(p, "ab" if append else "wb")
         except OSError as e:
             raise InputError(f"The capture file {str(p)!r} cannot be written: {e.strerror}") from None
-        self.fh.write(MAGIC + b"\n")
+        if fresh:
+            self.fh.write(MAGIC + b"\n")
         self.lines = 0
 
     def write(self, lines: list[bytes], times: np.ndarray) -> None:
@@ -133,4 +149,4 @@ def read_capture_blocks(
                 parser.bad += bad
             return p
 
-    yield from read_blocks(path, _Splitter(), block_bytes)  # type: ignore[arg-type]
+    yield from read_blocks(path, parser, block_bytes, feeder=_Splitter())

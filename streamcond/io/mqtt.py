@@ -74,7 +74,6 @@ from __future__ import annotations
 import asyncio
 import collections
 import contextlib
-import hashlib
 import logging
 import math
 import ssl
@@ -84,6 +83,7 @@ from typing import Any
 import aiomqtt
 
 from ..config import Mqtt
+from .. import records
 from ..records import to_json
 from .spool import Spool, SpoolError
 
@@ -169,22 +169,16 @@ def topic_for(record: dict[str, Any], prefix: str, qos: int) -> list[Message]:
     if kind == "edge":
         # The level an edge leaves behind is the channel's current state: retained, so a
         # subscriber arriving later still learns it.
-        state = {"kind": "state", "channel": ch, "t": record.get("t"), "level": record.get("level")}
-        if "value" in record:
-            state["value"] = record["value"]
-        if "seq" in record:
-            state["seq"] = record["seq"]
+        state = records.state_after(record)
         out.append((f"{p}/{ch}/state", to_json(state).encode("utf-8"), qos, True, "state"))
     return out
 
 
 def default_client_id(prefix: str) -> str:
-    """``streamcond-`` and 12 hex digits of SHA-256 of the prefix: 23 characters.
+    """The derived client id (one statement of the rule: :func:`streamcond.config.default_client_id`)."""
+    from ..config import default_client_id as derive
 
-    Stable across restarts (a station keeps its identity) and within the 23 characters every
-    MQTT 3.1.1 server must accept (§3.1.3.1).
-    """
-    return "streamcond-" + hashlib.sha256(prefix.encode("utf-8")).hexdigest()[:12]
+    return derive(prefix)
 
 
 def read_password(path: str) -> str:
