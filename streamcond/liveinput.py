@@ -29,7 +29,7 @@ from .errors import InputError
 from .io.lineparse import HOST_T, LineParser
 from .io.serialsource import Back, Data, LineFramer, Lost, SourceEvent
 from .ratelimit import RateLimitedLog
-from .replay import check_columns, make_parser
+from .replay import check_columns, needed_columns
 
 log = logging.getLogger("streamcond.daemon")
 
@@ -59,6 +59,14 @@ class InputCounters:
     records: int = 0
     last_t: float = float("nan")  #: sample time of the latest conditioned row
     last_rx: float = float("nan")  #: host time (epoch s) of the latest row read
+
+
+def make_parser(cfg: Config) -> LineParser:
+    """The live line parser: as replay's, but with numpy's CSV reader always — a live read is a
+    few lines, where pyarrow's reader gains nothing and importing it costs some 25 MiB."""
+    src = cfg.source
+    return LineParser(src.format, columns=src.columns, needed=needed_columns(cfg),
+                      max_line_bytes=src.max_line_bytes, reader="numpy")
 
 
 class LiveInput:
