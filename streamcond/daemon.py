@@ -44,6 +44,7 @@ from .liveinput import LiveInput
 from .ratelimit import RateLimitedLog
 from .io.eventlog import from_config as events_writer
 from .sdnotify import Notifier
+from .validate import validate
 
 log = logging.getLogger("streamcond.daemon")
 
@@ -72,6 +73,7 @@ class Daemon:
     def __init__(self, config_path: str | Path, notifier: Notifier | None = None) -> None:
         self.config_path = Path(config_path)
         self.cfg = load_config(self.config_path)
+        validate(self.cfg)
         if self.cfg.source.kind != "serial":
             raise ConfigError(
                 "streamcond run reads a serial source (source.kind = \"serial\"); "
@@ -106,12 +108,12 @@ class Daemon:
 
     # -- set-up -------------------------------------------------------------------------------
     def _open_outputs(self) -> None:
-        from .io.spool import Spool
+        from .io.spool import Spool, spool_options
 
         path = store_path(self.cfg)
-        max_records = self.cfg.output.mqtt.spool_max_records if self.cfg.output.mqtt else 1_000_000
+        mq = self.cfg.output.mqtt
         try:
-            self.spool = Spool(path, max_records=max_records)
+            self.spool = Spool(path, **spool_options(mq)) if mq else Spool(path)
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
         saved = self.spool.load_state()
@@ -317,6 +319,8 @@ class Daemon:
         assert self.live is not None and self.emitter is not None
         try:
             new = load_config(self.config_path)
+            running = self.live.pipeline if self.live is not None else None
+            validate(new, running.sample_rate_hz if running is not None else None)
             if new.source.kind != "serial":
                 raise ConfigError("source.kind must stay \"serial\" for a running daemon")
             if new.metrics != self.cfg.metrics:

@@ -350,7 +350,7 @@ def analyse_pulse(
         samples=int(data.t.size),
         sample_rate_hz=data.fs,
         duration_s=duration,
-        center=(lo_thr + hi_thr) / 2.0,
+        center=float(f"{(lo_thr + hi_thr) / 2.0:.10g}"),
         sigma=sigma,
         nu0_hz=nu0,
         target_rate_per_hour=target,
@@ -361,7 +361,10 @@ def analyse_pulse(
         edges_dwell=None,
         rates=np.empty(0),
         plateau=None,
-        suggestion=Suggestion(hi_thr - lo_thr, (lo_thr + hi_thr) / 2.0, None, None, None),  # type: ignore[arg-type]
+        # the width and centre of the two rounded thresholds, without binary dust (1.3, not
+        # 1.2999999999999998)
+        suggestion=Suggestion(float(f"{hi_thr - lo_thr:.10g}"),  # type: ignore[arg-type]
+                              float(f"{(lo_thr + hi_thr) / 2.0:.10g}"), None, None, None),
         safe_min=None,
         safe_max=None,
         configured_width=float(ch.band.width) if isinstance(ch.band, FixedBand) else None,
