@@ -221,8 +221,12 @@ def test_write_edits_the_band_in_place_keeping_every_comment(tmp_path):
     after = cfg.read_text()
     # the diff is printed, in unified form
     assert f"--- {cfg} (before)" in r.stdout and f"+++ {cfg} (after)" in r.stdout
+<<<<<<< HEAD
+    assert "-band = { center = 2.4, width = 0.085 }" in r.stdout
+=======
     tank_line = next(ln for ln in before.splitlines() if ln.startswith("band = { center = 2.4"))
     assert "-" + tank_line in r.stdout.splitlines()
+>>>>>>> main
     # every comment line and every comment after a value is still there, in order (the TOML
     # round trip of a style-preserving library keeps them)
     def comments(text):
