@@ -344,6 +344,8 @@ class Mqtt(_Model):
     #: spool_sync_interval_ms (a power cut may lose that much; a crash or SIGKILL loses nothing).
     spool_sync: Literal["always", "interval"] = "always"
     spool_sync_interval_ms: int = Field(1000, ge=10, le=60_000)
+    #: Seconds between two retained health records on ``<prefix>/health`` (streamcond.health).
+    health_interval_s: float = Field(30.0, gt=0)
 
 
 class Rotate(_Model):
@@ -371,12 +373,29 @@ class Output(_Model):
     mqtt: Mqtt | None = None
 
 
+class Metrics(_Model):
+    """The optional Prometheus endpoint (streamcond.metrics)."""
+
+    #: ``"host:port"`` to serve ``/metrics`` on; a bare port binds 127.0.0.1. None: off.
+    listen: str | None = None
+
+    @field_validator("listen")
+    @classmethod
+    def _listen(cls, v: str | None) -> str | None:
+        if v is not None:
+            from .metrics import parse_listen
+
+            parse_listen(v)
+        return v
+
+
 class Config(_Model):
     station: Station = Field(default_factory=Station)
     source: Source
     channel: list[Channel] = Field(min_length=1)
     stats: Stats = Field(default_factory=Stats)
     output: Output = Field(default_factory=Output)
+    metrics: Metrics = Field(default_factory=Metrics)
 
     @model_validator(mode="after")
     def _cross_checks(self) -> "Config":

@@ -1,55 +1,63 @@
 """``streamcond run``: the live daemon — wiring, not logic.
 
-serial port ─► LineFramer (lines + host times) ─► LineParser ─► Pipeline ─► records
-records ─► JSON-lines file (optional) and, for MQTT, the durable spool ─► Publisher
+serial port ─► reader thread: LineFramer ─► LineParser ─► Pipeline   (streamcond.liveinput)
+           ─► emitter thread: events file, spool (records + channel state)  (streamcond.emitter)
+           ─► event loop: Publisher (spool → MQTT), signals, health, metrics, watchdog
 
-* Everything that decides what an event is lives in the pure core (:mod:`streamcond.core`);
-  this module only moves bytes and records between the edges, on one asyncio loop.
-* Data that arrives while a block is being processed is taken as the next block, and blocks
-  are at least ``MIN_BLOCK_S`` apart: low latency when the line is quiet, bounded per-block
-  overhead when it is busy. The records do not depend on the blocking (chunk invariance).
+* Everything that decides what an event is lives in the pure core (:mod:`streamcond.core`).
+  The serial reader's thread frames, parses and conditions each read where it was read, so a
+  quiet stretch costs no event-loop wake-up; rows are held back while no edge can be pending
+  in them (the block scheduler of :mod:`streamcond.liveinput`). The records do not depend on
+  the blocking (chunk invariance).
 * Before a record is handed to MQTT it is committed to the SQLite spool, in the same
   transaction as the channels' ``seq`` and levels, so neither a broker outage nor a SIGKILL
-  loses an edge or breaks the numbering.
+  loses an edge or breaks the numbering. The commit happens in its own thread, never on the
+  reader or on the event loop.
 * Signals: SIGHUP reloads the config (a config that fails validation is rejected with one log
-  line and the old one keeps running); SIGTERM/SIGINT stop reading, flush the spool as far as the
-  broker allows within ``STOP_FLUSH_S``, publish ``offline`` and exit 0.
+  line and the old one keeps running). A reload never stops the reading and conditioning of
+  samples: a new MQTT connection is made in the background (the records wait in the spool),
+  and a further SIGHUP meanwhile is applied at once. SIGTERM/SIGINT stop reading, flush the
+  spool as far as the broker allows within ``STOP_FLUSH_S``, publish ``offline`` and exit 0.
 * A vanished device is a ``fault`` record, a returned one a ``gap`` record; the daemon never
   exits for that.
+* Health (:mod:`streamcond.health`): a retained record on ``<prefix>/health`` every
+  ``health_interval_s``, optional Prometheus metrics (:mod:`streamcond.metrics`), "still
+  disconnected" in the log at a steady pace while the broker is away, and the systemd watchdog
+  fed only while every part of the pipeline makes progress.
 """
 
 from __future__ import annotations
 
 import asyncio
 import logging
+import math
 import signal
 import time
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
-from . import records
 from .config import Config, load_config
-from .core.pipeline import Pipeline
+from .emitter import Emitter
 from .errors import ConfigError, InputError, StreamcondError
-from .io.lineparse import HOST_T, LineParser
-from .io.eventlog import EventLog, from_config as events_writer
-from .replay import check_columns, make_parser
+from .health import HealthRecorder, ProgressWatch, Snapshot, oldest_age_s, process_cpu_s, process_rss_bytes
+from .liveinput import LiveInput
+from .ratelimit import RateLimitedLog
+from .io.eventlog import from_config as events_writer
 from .sdnotify import Notifier
 from .validate import validate
 
 log = logging.getLogger("streamcond.daemon")
 
-#: Shortest time between two processed blocks: bounds the per-block overhead (8 channels cost
-#: about half a millisecond a block) when the line is busy, at the price of at most this much
-#: added latency (measured: p99 line→MQTT latency 12 ms at 8 × 1 kHz; tests/bench/bench_daemon.py).
-MIN_BLOCK_S = 0.008
 #: How long a clean stop may spend delivering the spool's backlog.
 STOP_FLUSH_S = 5.0
-#: At most one summary line about bad input per this many seconds.
-BAD_INPUT_LOG_S = 60.0
+#: How long a reload lets the old MQTT connection deliver before the new one starts (what is
+#: not delivered stays in the spool and goes out on the new connection).
+RELOAD_FLUSH_S = 1.0
+#: The reader hands a read over at most this often while bytes keep coming (bounds the
+#: per-read overhead at a kilohertz of lines; a line is never held longer than this).
+COALESCE_S = 0.004
+#: Period of the housekeeping tick (held rows, health, watchdog, the disconnected log).
+TICK_S = 1.0
 
 
 def store_path(cfg: Config) -> Path:
@@ -57,47 +65,6 @@ def store_path(cfg: Config) -> Path:
     if cfg.output.mqtt is not None:
         return Path(cfg.output.mqtt.spool_path)
     return Path(cfg.output.state_path)
-
-
-class RateLimitedLog:
-    """Bad input is logged with its first examples, then summarised at most once a minute."""
-
-    def __init__(self, interval_s: float = BAD_INPUT_LOG_S, first: int = 5) -> None:
-        self.interval = interval_s
-        self.first = first
-        self.logged = 0
-        self.pending = 0
-        self.last_example = ""
-        self.last_time = -1e18
-
-    def bad(self, count: int, examples: list[str], now: float) -> None:
-        if count <= 0:
-            return
-        for ex in examples:
-            if self.logged < self.first:
-                log.warning("bad input skipped: %s", ex)
-                self.logged += 1
-                self.last_time = now
-            else:
-                self.last_example = ex
-        shown = min(len(examples), max(0, self.first - (self.logged - len(examples))))
-        self.pending += max(0, count - shown)
-        if self.logged >= self.first and self.pending and now - self.last_time >= self.interval:
-            log.warning("%d more bad input lines skipped%s", self.pending,
-                        f" (latest: {self.last_example})" if self.last_example else "")
-            self.pending = 0
-            self.last_time = now
-
-
-@dataclass
-class Counters:
-    blocks: int = 0
-    rows: int = 0
-    bad_lines: int = 0
-    dropped_long: int = 0
-    records: int = 0
-    reloads: int = 0
-    rejected_reloads: int = 0
 
 
 class Daemon:
@@ -113,31 +80,33 @@ class Daemon:
                 "for a recording use `streamcond replay` (with --speed to pace it)"
             )
         self.notifier = notifier or Notifier()
-        self.counters = Counters()
-        self.badlog = RateLimitedLog()
+        self.started = time.monotonic()
         self.stop_event = asyncio.Event()
         self.reload_event = asyncio.Event()
-        self.wake = asyncio.Event()
-        self.pending: list[Any] = []  # source events not processed yet
+        self.reloads = 0
+        self.rejected_reloads = 0
         self.spool: Any = None
+        self.emitter: Emitter | None = None
+        self.live: LiveInput | None = None
         self.publisher: Any = None
         self.publisher_task: asyncio.Task | None = None
-        self.writer: EventLog | None = None
+        self._publisher_dirty = False
+        self._switch_task: asyncio.Task | None = None
+        self._reconnects_before = 0  # of publishers replaced by reloads
         self.source: Any = None
         self.source_task: asyncio.Task | None = None
-        self.lost_at: float | None = None
-        self._reset_parsing()
+        self.fatal: BaseException | None = None
+        self.metrics: Any = None
+        self.health = HealthRecorder()
+        self._next_health = 0.0
+        self._oldest_age: float | None = None
+        self._was_connected = False
+        self._disconnected_since: float | None = None
+        # While the broker is away, the log gets "still disconnected, N queued" once per
+        # health interval: the line stands in for the health record that cannot be sent.
+        self._disconnected_log = RateLimitedLog(log, 30.0, first=0)
 
     # -- set-up -------------------------------------------------------------------------------
-    def _reset_parsing(self) -> None:
-        from .io.serialsource import LineFramer
-
-        # resync: the first bytes after opening a port are usually the middle of a line
-        self.framer = LineFramer(self.cfg.source.max_line_bytes, resync=True)
-        self.parser: LineParser = make_parser(self.cfg)
-        self.pipeline: Pipeline | None = None
-
-
     def _open_outputs(self) -> None:
         from .io.spool import Spool, spool_options
 
@@ -147,265 +116,315 @@ class Daemon:
             self.spool = Spool(path, **spool_options(mq)) if mq else Spool(path)
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
-        self.saved_state = self.spool.load_state()
-        self.writer = events_writer(self.cfg.output)
+        saved = self.spool.load_state()
+        writer = events_writer(self.cfg.output)
+        self.emitter = Emitter(self.spool, writer, self._mqtt_target(self.cfg), None)
+        self.live = LiveInput(self.cfg, saved)
+
+    @staticmethod
+    def _mqtt_target(cfg: Config) -> tuple[str, int] | None:
+        return (cfg.topic_prefix, cfg.output.mqtt.qos) if cfg.output.mqtt is not None else None
 
     def _start_publisher(self) -> None:
+        assert self.emitter is not None
         if self.cfg.output.mqtt is None:
             self.publisher = None
+            self.emitter.wake = None
             return
         from .io.mqtt import Publisher
 
+        loop = asyncio.get_running_loop()
         self.publisher = Publisher(self.cfg.output.mqtt, self.cfg.topic_prefix, self.spool)
         self.publisher_stop = asyncio.Event()
         self.publisher_task = asyncio.create_task(self.publisher.run(self.publisher_stop))
+        notify = self.publisher.notify
+
+        def wake() -> None:  # from the emitter thread
+            try:
+                loop.call_soon_threadsafe(notify)
+            except RuntimeError:  # the loop has closed: nothing to wake
+                pass
+
+        self.emitter.wake = wake
+        if len(self.spool):
+            self.publisher.notify()
 
     def _start_source(self) -> None:
-        from .io.serialsource import SerialSource
+        from .io.serialsource import Lost, SerialSource
 
-        # the reader hands data over at most as often as blocks are processed
-        self.source = SerialSource(self.cfg.source, coalesce_s=MIN_BLOCK_S / 2)
+        loop = asyncio.get_running_loop()
+        live, emitter, port = self.live, self.emitter, self.cfg.source.port
+        assert live is not None and emitter is not None
+
+        def sink(ev: Any) -> None:  # in the reader thread
+            if self.fatal is not None:
+                return
+            try:
+                emitter.put(live.feed(ev))
+            except StreamcondError as e:  # e.g. settings impossible at the measured rate
+                self.fatal = e
+                loop.call_soon_threadsafe(self.stop_event.set)
+                return
+            if isinstance(ev, Lost):
+                self.notifier.status(f"waiting for {port}")
+            elif type(ev).__name__ == "Back":
+                self.notifier.status(f"reading {port}")
+
+        self.source = SerialSource(self.cfg.source, coalesce_s=COALESCE_S, sink=sink)
         self.source_task = asyncio.create_task(self._read_source(self.source))
 
     async def _read_source(self, source: Any) -> None:
-        async for ev in source.events():
-            self.pending.append(ev)
-            self.wake.set()
+        try:
+            async for _ in source.events():  # ends at stop; the sink gets the events
+                pass
+        except Exception as e:  # the reader thread failed: stop with its error
+            self.fatal = e
+            self.stop_event.set()
 
     # -- the main loop --------------------------------------------------------------------------
     async def run(self) -> int:
         loop = asyncio.get_running_loop()
-        def request(ev: asyncio.Event) -> Any:
-            def fn() -> None:
-                ev.set()
-                self.wake.set()  # the main loop waits on this one event only
-            return fn
-
-        for sig, fn in ((signal.SIGTERM, request(self.stop_event)),
-                        (signal.SIGINT, request(self.stop_event)),
-                        (signal.SIGHUP, request(self.reload_event))):
+        for sig, ev in ((signal.SIGTERM, self.stop_event), (signal.SIGINT, self.stop_event),
+                        (signal.SIGHUP, self.reload_event)):
             try:
-                loop.add_signal_handler(sig, fn)
+                loop.add_signal_handler(sig, ev.set)
             except (NotImplementedError, RuntimeError):  # pragma: no cover - not on this OS
                 pass
         self._open_outputs()
-        self._start_publisher()
-        self._start_source()
-        watchdog = asyncio.create_task(self._watchdog()) if self.notifier.watchdog_s else None
-        self.notifier.ready(f"reading {self.cfg.source.port}")
-        log.info("started: reading %s, %d channel(s)%s", self.cfg.source.port, len(self.cfg.channel),
-                 f", publishing to {self.cfg.output.mqtt.host}:{self.cfg.output.mqtt.port}"
-                 if self.cfg.output.mqtt else "")
-        next_block = 0.0
+        watch = ProgressWatch({
+            "serial reader": lambda now: now - self.source.heartbeat if self.source else 0.0,
+            "spool writer": lambda now: self.emitter.stalled_for(now) if self.emitter else 0.0,
+        })
         try:
+            self._start_metrics()
+            self._start_publisher()
+            self._start_source()
+            self.notifier.ready(f"reading {self.cfg.source.port}")
+            log.info("started: reading %s, %d channel(s)%s", self.cfg.source.port, len(self.cfg.channel),
+                     f", publishing to {self.cfg.output.mqtt.host}:{self.cfg.output.mqtt.port}"
+                     if self.cfg.output.mqtt else "")
+            next_ping = 0.0
+            tick = min(TICK_S, self.notifier.watchdog_s / 4) if self.notifier.watchdog_s else TICK_S
             while not self.stop_event.is_set():
-                if not self.reload_event.is_set():
-                    await self.wake.wait()
+                waits = [asyncio.ensure_future(self.stop_event.wait()),
+                         asyncio.ensure_future(self.reload_event.wait())]
+                await asyncio.wait(waits, timeout=tick, return_when=asyncio.FIRST_COMPLETED)
+                for w in waits:
+                    w.cancel()
+                if self.stop_event.is_set():
+                    break
                 if self.reload_event.is_set():
                     self.reload_event.clear()
                     await self._reload()
-                if self.stop_event.is_set():
-                    break
                 now = time.monotonic()
-                if now < next_block:
-                    await asyncio.sleep(next_block - now)
-                self.wake.clear()
-                await self._process_pending()
-                next_block = time.monotonic() + MIN_BLOCK_S
+                self.emitter.put(self.live.flush_stale(time.time()))  # type: ignore[union-attr]
+                await self._housekeeping(now)
+                if self.notifier.watchdog_s and now >= next_ping:
+                    stalled = watch.stalled()
+                    if stalled:
+                        log.error("no progress in the %s; the watchdog is not fed", " and the ".join(stalled))
+                    else:
+                        self.notifier.watchdog()
+                        next_ping = now + self.notifier.watchdog_s / 2  # sd_notify(3): half
         finally:
-            await self._shutdown(watchdog)
+            await self._shutdown()
+        if self.fatal is not None:
+            raise self.fatal
         return 0
 
-    async def _process_pending(self) -> None:
-        from .io.serialsource import Back, Data, Lost
+    # -- health ----------------------------------------------------------------------------------
+    def snapshot(self) -> Snapshot:
+        """The counters now (any thread; no locks taken but the pipeline's briefly)."""
+        live, pub = self.live, self.publisher
+        c = live.counters if live is not None else None
+        last_t = c.last_t if c is not None and math.isfinite(c.last_t) else None
+        age = time.time() - c.last_rx if c is not None and math.isfinite(c.last_rx) else None
+        return Snapshot(
+            t=last_t,
+            uptime_s=time.monotonic() - self.started,
+            rows=c.rows if c else 0,
+            bad_lines=c.bad_lines if c else 0,
+            long_lines=c.long_lines if c else 0,
+            edges=live.edges_by_channel() if live is not None else {},
+            spool_depth=len(self.spool) if self.spool is not None else 0,
+            spool_oldest_age_s=self._oldest_age,
+            dropped=self.spool.dropped if self.spool is not None else 0,
+            reconnects=self._reconnects_before + (pub.reconnects if pub is not None else 0),
+            broker_connected=bool(pub is not None and pub.counters.connected),
+            last_sample_age_s=age,
+            cpu_s=process_cpu_s(),
+            rss_bytes=process_rss_bytes(),
+        )
 
-        events, self.pending = self.pending, []
-        lines: list[bytes] = []
-        times: list[np.ndarray] = []
-        out: list[dict[str, Any]] = []
-
-        def flush_lines() -> None:
-            if lines:
-                out.extend(self._condition(lines, np.concatenate(times)))
-                lines.clear()
-                times.clear()
-
-        for ev in events:
-            if isinstance(ev, Data):
-                ls, ts, dropped = self.framer.feed(ev.data, ev.t_host)
-                if dropped:
-                    self.counters.dropped_long += dropped
-                    self.badlog.bad(dropped, [f"over-long line (> {self.cfg.source.max_line_bytes} bytes) dropped"], time.monotonic())
-                lines.extend(ls)
-                times.append(ts)
-            elif isinstance(ev, Lost):
-                flush_lines()
-                self.framer.reset()  # a half line from before the loss is not data
-                self.lost_at = ev.t_host
-                out.append(records.device_lost(self._sample_time(ev.t_host), ev.reason,
-                                               self.cfg.source.port, ev.t_host))
-                self.notifier.status(f"waiting for {self.cfg.source.port}")
-            elif isinstance(ev, Back):
-                flush_lines()
-                self.framer.reset(t_start=ev.t_host, resync=True)
-                t0 = self.lost_at if self.lost_at is not None else ev.t_host
-                # in the stream's time base (sample time), like every record; utc from the host
-                s0, s1 = self._sample_time(t0), self._sample_time(ev.t_host)
-                if s0 is not None and s1 is not None:
-                    out.append(records.with_utc(records.gap(s0, s1, "device_lost"), t0))
-                self.lost_at = None
-                self.notifier.status(f"reading {self.cfg.source.port}")
-        flush_lines()
-        if out:
-            await self._emit(out)
-
-    def _condition(self, lines: list[bytes], times: np.ndarray) -> list[dict[str, Any]]:
+    async def _refresh_oldest_age(self) -> None:
+        if self.spool is None or not len(self.spool):
+            self._oldest_age = None
+            return
         try:
-            parsed = self.parser.feed_lines(lines, times)
-        except InputError as e:
-            # e.g. a CSV stream joined mid-way without a header: keep looking for one
-            self.badlog.bad(len(lines), [" ".join(e.messages)], time.monotonic())
-            self.parser = make_parser(self.cfg)
-            return []
-        self.counters.bad_lines += parsed.bad
-        self.badlog.bad(parsed.bad, parsed.examples, time.monotonic())
-        if self.parser.columns is None or parsed.rows.shape[0] == 0:
-            return []
-        if self.pipeline is None:
-            self.pipeline = self._new_pipeline(self.cfg)
-            self.pipeline.restore(self.saved_state)
-        self.counters.blocks += 1
-        self.counters.rows += parsed.rows.shape[0]
-        return self.pipeline.process(parsed.rows)
+            items = await asyncio.to_thread(self.spool.peek, 1)
+        except Exception:  # the spool reports its own troubles; health just does not know
+            self._oldest_age = None
+            return
+        c = self.live.counters if self.live is not None else None
+        t_now = None
+        if c is not None and math.isfinite(c.last_t):
+            t_now = c.last_t + (time.time() - c.last_rx if math.isfinite(c.last_rx) else 0.0)
+        self._oldest_age = oldest_age_s(items[0].payload if items else None, t_now)
 
-    def _sample_time(self, host_t: float) -> float | None:
-        """A host clock reading in the stream's sample time (None before the first sample)."""
-        if self.pipeline is None:
-            return None
-        return self.pipeline.host_to_sample_time(host_t)
+    async def _housekeeping(self, now: float) -> None:
+        mq = self.cfg.output.mqtt
+        pub = self.publisher
+        if mq is None or pub is None:
+            return
+        connected = bool(pub.counters.connected)
+        if not connected:
+            if self._disconnected_since is None:
+                self._disconnected_since = now
+                self._disconnected_log.interval_s = mq.health_interval_s
+                self._disconnected_log.start()  # the first line after a full interval
+            self._disconnected_log.log(logging.WARNING, "MQTT broker %s:%d still disconnected, %d queued",
+                                       mq.host, mq.port, len(self.spool))
+        elif self._disconnected_since is not None:
+            self._disconnected_since = None
+            self._disconnected_log.reset()
+        due = now >= self._next_health or (connected and not self._was_connected)
+        self._was_connected = connected
+        if due and connected:
+            # Only while connected: a health record is "now", one stored during an outage
+            # would be stale on arrival (and would take spool room from the edges).
+            self._next_health = now + mq.health_interval_s
+            await self._refresh_oldest_age()
+            self._publish_health()
 
-    def _new_pipeline(self, cfg: Config) -> Pipeline:
-        assert self.parser.columns is not None
-        check_columns(cfg, self.parser.columns)
-        return Pipeline(cfg, self.parser.columns + [HOST_T], host_time=cfg.source.host_time)
+    def _publish_health(self) -> None:
+        from .records import to_json
 
-    async def _emit(self, recs: list[dict[str, Any]]) -> None:
-        self.counters.records += len(recs)
-        if self.writer is not None:
-            for r in recs:
-                self.writer(r)
-        items: list[tuple[str, bytes, int, bool, str]] = []
-        if self.publisher is not None:
-            from .io.mqtt import topic_for
+        rec = self.health.record(self.snapshot())
+        mq = self.cfg.output.mqtt
+        assert mq is not None and self.emitter is not None
+        item = (f"{self.cfg.topic_prefix}/health", to_json(rec).encode(), mq.qos, True, "health")
+        self.emitter.put_messages([item])
 
-            mq = self.cfg.output.mqtt
-            assert mq is not None
-            for r in recs:
-                items.extend(topic_for(r, self.cfg.topic_prefix, mq.qos))
-        changed = any(r["kind"] in (records.EDGE, records.STATE) for r in recs)
-        state = self.pipeline.snapshot() if (changed and self.pipeline is not None) else None
-        if items or state:
-            await asyncio.to_thread(self.spool.put_many, items, state)
-            if self.publisher is not None and items:
-                self.publisher.notify()
+    def _start_metrics(self) -> None:
+        if self.cfg.metrics.listen:
+            from .metrics import MetricsServer
+
+            def snap() -> Snapshot:
+                return self.snapshot()
+
+            self.metrics = MetricsServer(self.cfg.metrics.listen, snap)
 
     # -- reload and stop ---------------------------------------------------------------------------
     async def _reload(self) -> None:
+        assert self.live is not None and self.emitter is not None
         try:
             new = load_config(self.config_path)
-            validate(new, self.pipeline.sample_rate_hz if self.pipeline is not None else None)
+            running = self.live.pipeline if self.live is not None else None
+            validate(new, running.sample_rate_hz if running is not None else None)
             if new.source.kind != "serial":
                 raise ConfigError("source.kind must stay \"serial\" for a running daemon")
-            pipeline = None
-            if self.pipeline is not None and self.parser.columns is not None and new.source == self.cfg.source:
-                pipeline = self._new_pipeline(new)
-                pipeline.adopt(self.pipeline)
+            if new.metrics != self.cfg.metrics:
+                log.warning("a change of [metrics] takes effect at the next restart")
+            same_source = new.source == self.cfg.source
+            if same_source:
+                pipeline = self.live.prepare(new)
+                self.emitter.put(self.live.reconfigure(new, pipeline))
         except StreamcondError as e:
-            self.counters.rejected_reloads += 1
+            self.rejected_reloads += 1
             log.error("config reload rejected, the old config keeps running: %s", " ".join(e.messages))
             return
-        old = self.cfg
-        self.cfg = new
-        self.counters.reloads += 1
-        if pipeline is not None:
-            self.pipeline = pipeline
-        if new.source != old.source:
+        old, self.cfg = self.cfg, new
+        self.reloads += 1
+        if not same_source:
             # a different port or line format: reopen and start parsing afresh (the channels'
-            # numbering and levels are kept through the spool's state)
-            if self.pipeline is not None:
-                self.saved_state = self.pipeline.snapshot()
+            # numbering and levels are kept through the snapshot)
             await self._stop_source()
-            self._reset_parsing()
+            self.emitter.put(self.live.flush())
+            self.live = LiveInput(new, self.live.snapshot())
             self._start_source()
         if (new.output.events, new.output.rotate) != (old.output.events, old.output.rotate):
-            if self.writer is not None:
-                self.writer.close()
-            self.writer = events_writer(new.output)
-        if new.output.mqtt != old.output.mqtt:
-            await self._stop_publisher(flush=True)
+            self.emitter.swap_writer(events_writer(new.output))
+        self.emitter.mqtt = self._mqtt_target(new)
+        if new.output.mqtt != old.output.mqtt or new.topic_prefix != old.topic_prefix:
             if (new.output.mqtt and old.output.mqtt and new.output.mqtt.spool_path != old.output.mqtt.spool_path) or (
                 (new.output.mqtt is None) != (old.output.mqtt is None)
             ):
                 log.warning("a new spool/state path takes effect at the next restart")
-            self._start_publisher()
+            # In the background: conditioning goes on, a further SIGHUP is applied at once,
+            # and the publisher converges to the newest config.
+            self._publisher_dirty = True
+            if self._switch_task is None or self._switch_task.done():
+                self._switch_task = asyncio.create_task(self._switch_publisher())
         log.info("config reloaded from %s", self.config_path)
+
+    async def _switch_publisher(self) -> None:
+        while self._publisher_dirty:
+            self._publisher_dirty = False
+            await self._stop_publisher(flush_s=RELOAD_FLUSH_S)
+            if self.stop_event.is_set():
+                return
+            self._start_publisher()
 
     async def _stop_source(self) -> None:
         if self.source is not None:
-            self.source.stop()
+            await asyncio.to_thread(self.source.stop)
         if self.source_task is not None:
             try:
                 await asyncio.wait_for(self.source_task, 2.0)
             except (asyncio.TimeoutError, asyncio.CancelledError):
                 self.source_task.cancel()
-            except Exception as e:  # pragma: no cover - reported, never fatal
-                log.error("serial reader ended with an error: %s", e)
         self.source_task = None
 
-    async def _stop_publisher(self, flush: bool) -> None:
-        if self.publisher is None:
+    async def _stop_publisher(self, flush_s: float) -> None:
+        pub = self.publisher
+        if pub is None:
             return
+        if self.emitter is not None:
+            self.emitter.wake = None
+        self.publisher = None
+        self._reconnects_before += pub.reconnects
+        task = self.publisher_task
         try:
-            await self.publisher.shutdown(STOP_FLUSH_S if flush else 0.5)
+            await pub.shutdown(flush_s)
         except Exception as e:  # pragma: no cover - never fatal on the way out
             log.warning("MQTT shutdown: %s", e)
         self.publisher_stop.set()
-        if self.publisher_task is not None:
+        if task is not None:
             try:
-                await asyncio.wait_for(self.publisher_task, 2.0)
+                await asyncio.wait_for(task, 2.0)
             except (asyncio.TimeoutError, asyncio.CancelledError):
-                self.publisher_task.cancel()
+                task.cancel()
             except Exception as e:  # pragma: no cover
                 log.warning("MQTT publisher ended with an error: %s", e)
-        self.publisher = None
-        self.publisher_task = None
 
-    async def _shutdown(self, watchdog: asyncio.Task | None) -> None:
+    async def _shutdown(self) -> None:
         self.notifier.stopping()
         await self._stop_source()
-        await self._process_pending()  # what had arrived before the stop
-        if self.pipeline is not None:
-            await self._emit(self.pipeline.flush())  # the last, partial stats window
-        await self._stop_publisher(flush=True)
-        if watchdog is not None:
-            watchdog.cancel()
-        if self.writer is not None:
-            self.writer.close()
+        if self._switch_task is not None and not self._switch_task.done():
+            try:
+                await asyncio.wait_for(self._switch_task, RELOAD_FLUSH_S + 4.0)
+            except (asyncio.TimeoutError, asyncio.CancelledError):
+                self._switch_task.cancel()
+        if self.emitter is not None:
+            if self.live is not None and self.fatal is None:
+                # what had arrived before the stop, and the last, partial stats window
+                self.emitter.put(self.live.flush(final=True))
+            await asyncio.to_thread(self.emitter.close)
+        await self._stop_publisher(flush_s=STOP_FLUSH_S)
+        if self.metrics is not None:
+            self.metrics.close()
+        if self.emitter is not None:
+            self.emitter.close_writer()
         if self.spool is not None:
             left = len(self.spool)
             self.spool.close()
             if left:
                 log.warning("%d record(s) left in the spool; they are sent after the next start", left)
-        c = self.counters
-        log.info("stopped: %d rows, %d bad lines, %d over-long lines, %d records, %d reloads "
-                 "(%d rejected)", c.rows, c.bad_lines, c.dropped_long, c.records, c.reloads,
-                 c.rejected_reloads)
-
-    async def _watchdog(self) -> None:
-        assert self.notifier.watchdog_s
-        while True:
-            self.notifier.watchdog()
-            await asyncio.sleep(self.notifier.watchdog_s / 2)
+        c = self.live.counters if self.live is not None else None
+        if c is not None:
+            log.info("stopped: %d rows, %d bad lines, %d over-long lines, %d records, %d reloads "
+                     "(%d rejected)", c.rows, c.bad_lines, c.long_lines, c.records, self.reloads,
+                     self.rejected_reloads)
 
 
 def run(config_path: str | Path) -> int:

@@ -26,6 +26,7 @@ STATS = "stats"
 GAP = "gap"
 FAULT = "fault"
 SUMMARY = "summary"
+HEALTH = "health"
 MEASURE = "measure"
 INTERRUPTED = "interrupted"
 
@@ -159,6 +160,11 @@ def fault_start(channel: str, t: float, value: float, reason: str) -> dict[str, 
 def fault_end(channel: str, t: float, value: float, duration_s: float) -> dict[str, Any]:
     return {"kind": FAULT, "channel": channel, "t": t, "state": "end", "value": value,
             "duration_s": duration_s}
+
+
+def health(**fields: Any) -> dict[str, Any]:
+    """The daemon's health record (``<prefix>/health``; fields in :mod:`streamcond.health`)."""
+    return {"kind": HEALTH, **fields}
 
 
 def device_lost(t: float | None, detail: str, port: str | None, host_t: float) -> dict[str, Any]:

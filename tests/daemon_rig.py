@@ -193,7 +193,7 @@ def write_config(path: Path, port: Path, mqtt_port: int | None, spool: Path, **o
     band = over.get("band", "{ low = 0.3, high = 0.7 }")
     mqtt = (
         f'\n[output.mqtt]\nhost = "127.0.0.1"\nport = {mqtt_port}\nqos = 1\n'
-        f'topic_prefix = "test/station"\nspool_path = "{spool}"\n'
+        f'topic_prefix = "test/station"\nspool_path = "{spool}"\n' + over.get("mqtt_extra", "")
         if mqtt_port is not None else ""
     )
     path.write_text(
@@ -203,17 +203,20 @@ def write_config(path: Path, port: Path, mqtt_port: int | None, spool: Path, **o
         f'[[channel]]\nname = "a"\nband = {band}\nmeasure = {{ pulses_per_unit = 10.0, quantity_unit = "L" }}\n'
         '[stats]\ninterval_s = 1.0\n'
         f'[output]\nevents = "{over.get("events", "")}"\nstate_path = "{spool}"\n' + mqtt
+        + over.get("tail", "")
     )
     return path
 
 
 class DaemonProcess:
-    def __init__(self, config: Path, log: Path, prefix: list[str] | None = None) -> None:
+    def __init__(self, config: Path, log: Path, prefix: list[str] | None = None,
+                 env: dict[str, str] | None = None) -> None:
         self.config = config
         self.log = log
         # STREAMCOND_TEST_DEBUG=1: the daemon logs at debug level, with times
         self.extra_args = ["-vv"] if os.environ.get("STREAMCOND_TEST_DEBUG") else []
         self.prefix = prefix or []  # e.g. ["-m", "cProfile", "-o", "out.prof"] (benchmarks)
+        self.env = env or {}  # e.g. NOTIFY_SOCKET and WATCHDOG_USEC (a service manager's)
         self.proc: subprocess.Popen[bytes] | None = None
 
     def start(self) -> "DaemonProcess":
@@ -221,6 +224,7 @@ class DaemonProcess:
         self._offset = self._fh.tell()  # wait_log looks only at what this start logged
         env = dict(os.environ, PYTHONUNBUFFERED="1")
         env.pop("NOTIFY_SOCKET", None)
+        env.update(self.env)
         self.proc = subprocess.Popen(
             [sys.executable, *self.prefix, "-m", "streamcond", *self.extra_args, "run", "-c", str(self.config)],
             stdout=self._fh, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, cwd=ROOT, env=env,

@@ -164,7 +164,7 @@ def test_settings_impossible_at_the_measured_rate_exit_2(tmp_path):
         '[[channel]]\nname = "a"\ncolumn = "level_ma"\n'
         'band = { mode = "adaptive", center = 12, window_s = 0.1 }\n'
     )
-    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg))
+    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg), "--events", str(tmp_path / "out.jsonl"))
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert r.stderr.startswith("channel[0].band.window_s (0.1 s) holds 25 samples at 250 Hz")
     cfg.write_text(
@@ -172,7 +172,7 @@ def test_settings_impossible_at_the_measured_rate_exit_2(tmp_path):
         '[[channel]]\nname = "b"\ncolumn = "pump_a"\nband = { low = 1, high = 2 }\n'
         'filter = { kind = "lowpass", cutoff_hz = 200 }\n'
     )
-    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg))
+    r = run_cli("replay", "replay_data/orchard_pump.csv", "-c", str(cfg), "--events", str(tmp_path / "out.jsonl"))
     assert r.returncode == 2 and r.stderr.startswith("channel[0].filter:") and "Nyquist" in r.stderr
 
 

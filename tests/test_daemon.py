@@ -177,3 +177,151 @@ def test_sigterm_with_a_backlog_then_restart_delivers_it(rig):
     daemon.wait_log("opened", 15)
     edges = wait_edges(col, wave.toggles)
     assert_contiguous(edges, wave.toggles)
+
+
+# --- health, metrics, watchdog, reloads that must not stop the samples ----------------------------
+
+HEALTH_FIELDS = {
+    "kind", "t", "uptime_s", "rows", "rows_per_s", "bad_lines", "long_lines", "edges",
+    "spool_depth", "spool_oldest_age_s", "dropped", "reconnects", "broker_connected",
+    "last_sample_age_s", "cpu_percent", "rss_mib",
+}
+
+
+def test_health_record_metrics_scrape_and_disconnected_log(tmp_path, broker):
+    import urllib.request
+
+    from broker import free_port
+
+    pty = Pty(tmp_path / "ttyH")
+    relay = Relay(broker.port)
+    mport = free_port()
+    cfg = write_config(tmp_path / "h.toml", pty.path, relay.port, tmp_path / "state" / "spool.sqlite",
+                       mqtt_extra="health_interval_s = 1.0\n",
+                       tail=f'[metrics]\nlisten = "127.0.0.1:{mport}"\n')
+    daemon = DaemonProcess(cfg, tmp_path / "daemon.log")
+    col = collect(broker.host, broker.port, ["test/station/#"])
+    try:
+        wave = SquareWave(pty)
+        daemon.start()
+        daemon.wait_log("opened", 15)
+        wave.run_for(1.0, extra=b"\x00junk,,\n")
+        wave.run_for(1.5)
+        n = wait_edges(col, wave.toggles)
+        col.wait_for(lambda: any(json.loads(m.payload)["edges"].get("a", 0) >= wave.toggles
+                                 for m in col.on("test/station/health")), 10, "a health record with all edges")
+        rec = [json.loads(m.payload) for m in col.on("test/station/health")][-1]
+        assert set(rec) == HEALTH_FIELDS and rec["kind"] == "health"
+        assert rec["broker_connected"] is True and rec["bad_lines"] >= 1
+        assert rec["rows"] >= 400 and rec["edges"]["a"] == len({e["seq"] for e in n})
+        assert 0 < rec["rss_mib"] < 1000 and rec["last_sample_age_s"] is not None
+        from broker import retained_snapshot
+        kept = retained_snapshot(broker.host, broker.port, "test/station/health")
+        assert kept and kept[-1].retain  # a late subscriber gets the latest record
+        # a real HTTP scrape of the Prometheus endpoint: same counters
+        text = urllib.request.urlopen(f"http://127.0.0.1:{mport}/metrics", timeout=5).read().decode()
+        values = {}
+        for line in text.splitlines():
+            if line.startswith("streamcond_"):
+                name, v = line.rsplit(" ", 1)
+                values[name] = float(v)
+        assert values['streamcond_edges_total{channel="a"}'] == wave.toggles
+        assert values["streamcond_rows_total"] >= rec["rows"]
+        assert values["streamcond_broker_connected"] == 1.0
+        assert "# TYPE streamcond_rows_total counter" in text
+        # broker away: "still disconnected, N queued" once per health interval, not per attempt
+        relay.cut()
+        wave.run_for(3.5)
+        time.sleep(0.5)
+        log = daemon.current_log()
+        lines = [ln for ln in log.splitlines() if "still disconnected" in ln]
+        assert 2 <= len(lines) <= 5, lines
+        assert "queued" in lines[-1]
+        relay.resume()
+        edges = wait_edges(col, wave.toggles)
+        assert_contiguous(edges, wave.toggles)
+        daemon.signal(signal.SIGTERM)
+        assert daemon.wait(20) == 0
+    finally:
+        daemon.kill()
+        col.close()
+        relay.close()
+        pty.unplug()
+
+
+def test_reload_to_an_unreachable_broker_and_back_never_stops_the_samples(tmp_path, broker):
+    from broker import free_port
+
+    pty = Pty(tmp_path / "ttyR")
+    events = tmp_path / "events.jsonl"
+    cfg = write_config(tmp_path / "r.toml", pty.path, broker.port, tmp_path / "state" / "spool.sqlite",
+                       events=str(events))
+    good = cfg.read_text()
+    daemon = DaemonProcess(cfg, tmp_path / "daemon.log")
+    col = collect(broker.host, broker.port, ["test/station/#"])
+
+    def edges_in_file() -> int:
+        return sum(1 for ln in events.read_text().splitlines() if '"kind":"edge"' in ln)
+
+    try:
+        wave = SquareWave(pty)
+        daemon.start()
+        daemon.wait_log("opened", 15)
+        wave.run_for(1.0)
+        dead = free_port()  # nothing listens there
+        cfg.write_text(good.replace(f"port = {broker.port}", f"port = {dead}"))
+        daemon.signal(signal.SIGHUP)
+        before = edges_in_file()
+        wave.run_for(1.0)
+        # a second SIGHUP in that window acts at once (a band change)
+        cfg.write_text(good.replace(f"port = {broker.port}", f"port = {dead}")
+                       .replace("low = 0.3, high = 0.7", "low = 0.25, high = 0.75"))
+        daemon.signal(signal.SIGHUP)
+        wave.run_for(1.0)
+        assert daemon.current_log().count("config reloaded") == 2
+        # conditioning went on all along: edges reached the events file while MQTT was away
+        assert edges_in_file() >= before + 15
+        cfg.write_text(good)
+        daemon.signal(signal.SIGHUP)
+        wave.run_for(1.0)
+        edges = wait_edges(col, wave.toggles)
+        assert_contiguous(edges, wave.toggles)
+        assert daemon.current_log().count("config reloaded") == 3
+        daemon.signal(signal.SIGTERM)
+        assert daemon.wait(20) == 0
+    finally:
+        daemon.kill()
+        col.close()
+        pty.unplug()
+
+
+def test_watchdog_pings_while_samples_flow(tmp_path, broker):
+    import socket as so
+
+    pty = Pty(tmp_path / "ttyW")
+    sock = so.socket(so.AF_UNIX, so.SOCK_DGRAM)
+    sock.bind(str(tmp_path / "notify"))
+    sock.settimeout(0.2)
+    cfg = write_config(tmp_path / "w.toml", pty.path, broker.port, tmp_path / "state" / "spool.sqlite")
+    daemon = DaemonProcess(cfg, tmp_path / "daemon.log",
+                           env={"NOTIFY_SOCKET": str(tmp_path / "notify"), "WATCHDOG_USEC": "1000000"})
+    got: list[bytes] = []
+    try:
+        daemon.start()
+        daemon.wait_log("opened", 15)
+        SquareWave(pty).run_for(2.0)
+        end = time.monotonic() + 1.0
+        while time.monotonic() < end:
+            try:
+                got.append(sock.recv(512))
+            except so.timeout:
+                pass
+        assert any(b"READY=1" in g for g in got)
+        # WATCHDOG_USEC 1 s: a ping at least every half of it (sd_notify(3)), while progressing
+        assert sum(g == b"WATCHDOG=1" for g in got) >= 3
+        daemon.signal(signal.SIGTERM)
+        assert daemon.wait(20) == 0
+    finally:
+        daemon.kill()
+        sock.close()
+        pty.unplug()

@@ -75,6 +75,15 @@ def test_fuzzed_replay_counts_exactly_and_keeps_the_valid_edges(fmt, fuzzed, tmp
         assert _edges(res.records) == _edges(ref.records)
 
 
+def _unread(pty) -> int:
+    """Bytes written to the pty that the daemon has not read yet (FIONREAD on the slave)."""
+    import fcntl
+    import struct
+    import termios
+
+    return struct.unpack("i", fcntl.ioctl(pty.slave, termios.FIONREAD, b"\0\0\0\0"))[0]
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("fmt", FORMATS)
 def test_fuzzed_stream_through_the_daemon(fmt, fuzzed_live, tmp_path, monkeypatch):
@@ -104,14 +113,15 @@ def test_fuzzed_stream_through_the_daemon(fmt, fuzzed_live, tmp_path, monkeypatc
         for a in range(0, len(view), step):
             pty.write(bytes(view[a : a + step]))
         t_written = time.monotonic()
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 90
         want = len(_edges(ref.records))
-        while time.monotonic() < deadline:
-            if events.exists() and events.read_text().count('"kind":"edge"') >= want:
+        while time.monotonic() < deadline:  # every edge written, and every byte read
+            if (events.exists() and events.read_text().count('"kind":"edge"') >= want
+                    and _unread(pty) == 0):
                 break
             time.sleep(0.2)
         t_seen = time.monotonic()
-        time.sleep(0.5)
+        time.sleep(1.0)  # the last read's lines are conditioned
         daemon.signal(15)
         assert daemon.wait(30) == 0
         print(f"open {t_open - t_start:.1f} s, write {t_written - t_open:.1f} s, "

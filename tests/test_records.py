@@ -125,9 +125,9 @@ def test_live_records_one_time_base_utc_and_last_window(tmp_path):
     data = [Data(b"\n", host0 - 0.1)] + [
         Data(b"%d,%d\n" % (5000 + m, (m // 500) % 2), host0 + m / 1000 + 0.002) for m in ms
     ]
-    d.pending = data + [Lost(host0 + 3.0, "gone"), Back(host0 + 4.0)]
-    asyncio.run(d._process_pending())
-    asyncio.run(d._shutdown(None))
+    for ev in data + [Lost(host0 + 3.0, "gone"), Back(host0 + 4.0)]:
+        d.emitter.put(d.live.feed(ev))  # what the serial reader's thread does with each read
+    asyncio.run(d._shutdown())
     recs = [json.loads(l) for l in (tmp_path / "ev.jsonl").read_text().splitlines()]
     lost = next(r for r in recs if r.get("reason") == "device_lost" and r["kind"] == "fault")
     # `t` is sample time (the device's clock, ~7.49 s), not host epoch seconds

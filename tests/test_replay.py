@@ -173,7 +173,7 @@ def test_usage_and_input_errors_exit_2(args, fragment):
 def test_missing_column_is_named(tmp_path):
     rec = tmp_path / "r.csv"
     rec.write_text("t_ms,level_ma\n0,12\n4,12\n")
-    r = run_cli("replay", str(rec), "-c", str(CONFIG))
+    r = run_cli("replay", str(rec), "-c", str(CONFIG), "--events", str(tmp_path / "out.jsonl"))
     assert r.returncode == 2
     assert "channel[1].column 'pump_a' is not a column of the recording" in r.stderr
 
@@ -220,7 +220,7 @@ def test_compare_pairs_moved_missing_and_unexpected():
 def test_plain_recording_without_time_is_refused(tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[source]\nkind = "file"\n[[channel]]\nname = "level_ma"\nband = { low = 1, high = 2 }\n')
-    r = run_cli("replay", str(DEMO), "-c", str(cfg))
+    r = run_cli("replay", str(DEMO), "-c", str(cfg), "--events", str(tmp_path / "out.jsonl"))
     assert r.returncode == 2 and "carries no sample time" in r.stderr
 
 

@@ -41,7 +41,20 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import ndimage, signal
+# SciPy is imported on first use, not with this module: the live daemon loads it only when
+# its config has a filter that needs it (a board's memory budget; SciPy is about 20 MiB).
+
+
+def _ndimage():  # type: ignore[no-untyped-def]
+    from scipy import ndimage
+
+    return ndimage
+
+
+def _signal():  # type: ignore[no-untyped-def]
+    from scipy import signal
+
+    return signal
 
 __all__ = [
     "FILTER_KINDS",
@@ -249,10 +262,10 @@ class MedianFilter(_WindowFilter):
         # ext[i:i+n]; only centres whose window lies wholly inside `ext` are
         # kept, so the boundary mode never affects the result.
         start = n // 2
-        upper = ndimage.rank_filter(ext, rank=n // 2, size=n, mode="nearest")
+        upper = _ndimage().rank_filter(ext, rank=n // 2, size=n, mode="nearest")
         out = upper[start : start + n_out]
         if n % 2 == 0:
-            lower = ndimage.rank_filter(ext, rank=n // 2 - 1, size=n, mode="nearest")
+            lower = _ndimage().rank_filter(ext, rank=n // 2 - 1, size=n, mode="nearest")
             out = (lower[start : start + n_out] + out) / 2.0
         else:
             out = out.copy()
@@ -293,12 +306,12 @@ class EmaFilter(StreamFilter):
         self._zi: FloatArray = np.zeros(1, dtype=np.float64)
 
     def _start(self, x0: float) -> None:
-        self._zi = signal.lfilter_zi(self.b, self.a) * x0
+        self._zi = _signal().lfilter_zi(self.b, self.a) * x0
 
     def _filter(self, block: FloatArray) -> FloatArray:
         # len(a) == 2, so SciPy runs its per-sample direct-form-II-transposed
         # loop: every output is the same arithmetic whatever the block split.
-        out, self._zi = signal.lfilter(self.b, self.a, block, zi=self._zi)
+        out, self._zi = _signal().lfilter(self.b, self.a, block, zi=self._zi)
         return np.asarray(out, dtype=np.float64)
 
     def _params(self) -> dict[str, Any]:
@@ -332,7 +345,7 @@ class ButterworthLowpassFilter(StreamFilter):
             )
         self.order = _check_order(order)
         self.sos: FloatArray = np.asarray(
-            signal.butter(self.order, self.cutoff_hz, btype="lowpass", output="sos",
+            _signal().butter(self.order, self.cutoff_hz, btype="lowpass", output="sos",
                           fs=self.sample_rate_hz),
             dtype=np.float64,
         )
@@ -340,10 +353,10 @@ class ButterworthLowpassFilter(StreamFilter):
         self._zi: FloatArray = np.zeros((self.sos.shape[0], 2), dtype=np.float64)
 
     def _start(self, x0: float) -> None:
-        self._zi = signal.sosfilt_zi(self.sos) * x0
+        self._zi = _signal().sosfilt_zi(self.sos) * x0
 
     def _filter(self, block: FloatArray) -> FloatArray:
-        out, self._zi = signal.sosfilt(self.sos, block, zi=self._zi)
+        out, self._zi = _signal().sosfilt(self.sos, block, zi=self._zi)
         return np.asarray(out, dtype=np.float64)
 
     def _params(self) -> dict[str, Any]:

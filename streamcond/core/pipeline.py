@@ -23,6 +23,11 @@ from .channel import ChannelConditioner
 from .timebase import Timebase
 
 
+#: At most this many samples of one channel wait for conditioning (memory bound; 64 k float64
+#: pairs = 1 MiB per channel).
+MAX_DEFERRED = 65536
+
+
 class Pipeline:
     """Conditions the configured channels of one source."""
 
@@ -53,6 +58,13 @@ class Pipeline:
         self._restore: dict[str, dict[str, Any]] = {}
         self._adopt: dict[str, ChannelConditioner] = {}
         self._held = np.empty((0, len(self.columns)))
+        self._hold_info: Any = None  # may_emit's per-channel static test, for self.channels
+        # per channel: samples deferred by _quiet_channels — [(t, x), ...], their count, and
+        # the global index of the first
+        self._pending: list[list[tuple[np.ndarray, np.ndarray]]] = []
+        self._pending_n: list[int] = []
+        self._pending_at: list[int] = []
+        self._carry: list[tuple[int, int, int, dict[str, Any]]] = []
         self.samples = 0  # samples passed to the channels so far
         self.gaps = 0
         self.last_t = float("nan")
@@ -77,6 +89,9 @@ class Pipeline:
                 ch.restore(self._restore[ch.name])
         self._adopt.clear()
         self.channels = channels
+        self._pending = [[] for _ in channels]
+        self._pending_n = [0] * len(channels)
+        self._pending_at = [0] * len(channels)
 
     def process(self, rows: np.ndarray) -> list[dict[str, Any]]:
         """Condition a block of rows; returns the records it completed."""
@@ -97,14 +112,36 @@ class Pipeline:
         t, keep, gaps = self.timebase.process(raw_t, n)
         if keep.size != n:
             rows = rows[keep]
-        tagged: list[tuple[int, int, int, dict[str, Any]]] = []
+        base = self.samples  # global index of this block's first sample
+        tagged: list[tuple[int, int, int, dict[str, Any]]] = list(self._carry)
+        self._carry = []
         for k, rec in gaps:
-            tagged.append((k, -1, 0, rec))
+            tagged.append((base + k, -1, 0, rec))
         self.gaps += len(gaps)
-        assert self.channels is not None
-        for ci, (ch, col) in enumerate(zip(self.channels, self.chan_cols)):
-            for i, rank, rec in ch.process(t, rows[:, col]):
-                tagged.append((i, ci, rank, rec))
+        chans = self.channels
+        assert chans is not None
+        quiet = self._quiet_channels(t, rows) if t.size else None
+        for ci, (ch, col) in enumerate(zip(chans, self.chan_cols)):
+            x = rows[:, col]
+            pend = self._pending[ci]
+            if quiet is not None and quiet[ci] and self._pending_n[ci] + t.size <= MAX_DEFERRED:
+                # provably no record from this channel in these samples: condition them later,
+                # together with more (its records come out at their global sample index)
+                if not pend:
+                    self._pending_at[ci] = base
+                pend.append((t, x))
+                self._pending_n[ci] += t.size
+                continue
+            if pend:
+                at = self._pending_at[ci]
+                tt = np.concatenate([p[0] for p in pend] + [t])
+                xx = np.concatenate([p[1] for p in pend] + [x])
+                pend.clear()
+                self._pending_n[ci] = 0
+            else:
+                at, tt, xx = base, t, x
+            for i, rank, rec in ch.process(tt, xx):
+                tagged.append((at + i, ci, rank, rec))
         if t.size:
             self.last_t = float(t[-1])
         self.samples += int(t.size)
@@ -113,8 +150,134 @@ class Pipeline:
         if self.host_col is not None and t.size:
             host = rows[:, self.host_col]
             self.last_host_t = float(host[-1])
-            _stamp(tagged, t, host)
+            _stamp(tagged, t, host, base)
         return [r[3] for r in tagged]
+
+    def _quiet_channels(self, t: np.ndarray, rows: np.ndarray) -> list[bool]:
+        """Per channel: can it provably emit no record over these samples (see
+        :meth:`may_emit`; besides: no stats window ends and no noise estimate is due in them)?
+        Then conditioning them may wait: the per-call cost of a channel's chain is far above
+        its per-sample cost, and in a live stream most channels are quiet in most blocks."""
+        chans = self.channels
+        assert chans is not None
+        info = self._hold_info
+        if info is None or info[0] is not chans:
+            info = self._hold_info = (chans, [
+                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
+            ])
+        if rows.shape[0] == 1:
+            r = rows[0].tolist()
+            lo_v = hi_v = [r[c] for c in self.chan_cols]
+        else:
+            sub = rows[:, self.chan_cols]
+            lo_v = sub.min(axis=0).tolist()
+            hi_v = sub.max(axis=0).tolist()
+        t_last = float(t[-1])
+        out = []
+        for ci, ch in enumerate(chans):
+            out.append(info[1][ci] and self._quiet(ch, lo_v[ci], hi_v[ci], t_last,
+                                                   self._pending_n[ci] + t.size))
+        return out
+
+    @staticmethod
+    def _quiet(ch: ChannelConditioner, a: float, b: float, t_last: float, n_new: int) -> bool:
+        st = ch.dwell
+        level = st.level
+        if st.pend_class != -1 or ch.in_fault or not (level == 0 or level == 1):
+            return False
+        if ch._pending_noise is not None:
+            return False
+        w = ch.stats.window
+        if w is None or t_last >= (w + 1) * ch.stats.interval:
+            return False  # a stats window ends (or starts) in these samples
+        nt = ch.noise
+        n0 = nt.samples_seen
+        wn, every = nt.window_n, nt.update_every
+        first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
+        if first <= n0 + n_new:
+            return False  # a noise estimate is due
+        band = ch.band
+        if band.adaptive:
+            half = band.min_width / 2.0
+            low, high = band.center - half, band.center + half
+        else:
+            low, high = band.low, band.high
+        g = ch.gain
+        if g != 1.0 or ch.offset != 0.0:
+            a, b = a * g + ch.offset, b * g + ch.offset
+            if g < 0:
+                a, b = b, a
+        if level == 1:
+            return a >= low  # (NaN: False, not provable)
+        return b <= high
+
+    def _drain(self) -> None:
+        """Condition every channel's deferred samples now (before state is read or handed
+        on); their records (by construction none) are kept for the next output."""
+        for ci, ch in enumerate(self.channels or []):
+            pend = self._pending[ci]
+            if not pend:
+                continue
+            at = self._pending_at[ci]
+            tt = np.concatenate([p[0] for p in pend])
+            xx = np.concatenate([p[1] for p in pend])
+            pend.clear()
+            self._pending_n[ci] = 0
+            for i, rank, rec in ch.process(tt, xx):
+                self._carry.append((at + i, ci, rank, rec))
+
+    def may_emit(self, rows: np.ndarray) -> bool:
+        """Could conditioning ``rows`` now emit an edge or a ``state`` record? Conservative:
+        False only when every channel provably keeps its level over these rows, so a caller
+        may hold them back and condition them later together with more (the records do not
+        depend on the blocking). One pass over all channel columns at once (2-D min/max).
+
+        A channel keeps its level when its level is known, it has no prefilter (a filter's
+        memory reaches back into rows already conditioned), no fault limits, no dwell
+        candidate pending, and its values stay on the current side: above the lower
+        threshold at level 1, below the upper at level 0. For an adaptive band the
+        thresholds can move at a noise update inside the rows, but never inside
+        ``center ± min_width/2`` (the narrowest band), which is therefore the test.
+        """
+        chans = self.channels
+        if chans is None or not self.timebase.ready or rows.shape[0] == 0:
+            return True
+        info = self._hold_info
+        if info is None or info[0] is not chans:
+            info = self._hold_info = (chans, [
+                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
+            ])
+        if not all(info[1]):
+            return True
+        if rows.shape[0] == 1:  # the usual live read at low rates: no numpy reductions
+            r = rows[0].tolist()
+            lo_v = hi_v = [r[c] for c in self.chan_cols]
+        else:
+            sub = rows[:, self.chan_cols]
+            lo_v = sub.min(axis=0).tolist()
+            hi_v = sub.max(axis=0).tolist()
+        for ch, a, b in zip(chans, lo_v, hi_v):
+            st = ch.dwell
+            level = st.level
+            if st.pend_class != -1 or ch.in_fault or not (level == 0 or level == 1):
+                return True
+            band = ch.band
+            if band.adaptive:
+                half = band.min_width / 2.0
+                low, high = band.center - half, band.center + half
+            else:
+                low, high = band.low, band.high
+            g = ch.gain
+            if g != 1.0 or ch.offset != 0.0:
+                a, b = a * g + ch.offset, b * g + ch.offset
+                if g < 0:
+                    a, b = b, a
+            if level == 1:
+                if not a >= low:  # (NaN: not provable)
+                    return True
+            elif not b <= high:
+                return True
+        return False
 
     def host_to_sample_time(self, host_t: float) -> float | None:
         """The sample time of a host clock reading (live: a device lost or back), from the last
@@ -127,10 +290,12 @@ class Pipeline:
         """End of stream: rows still held back for the period estimate are conditioned with
         the period estimated from what there is (a recording shorter than the estimate)."""
         out: list[dict[str, Any]] = []
+        self._drain()
         if not self.timebase.ready and self._held.shape[0]:
             if self.timebase.estimate(self._held[:, self.time_col], final=True):
                 held, self._held = self._held, np.empty((0, len(self.columns)))
                 out = self.process(held)
+                self._drain()
         out.extend(self.flush())
         return out
 
@@ -138,7 +303,11 @@ class Pipeline:
         """End of stream or clean stop: every channel's current, partial stats window (and its
         measure record), marked ``partial``, so the last seconds are not lost. The windows start
         afresh at the next sample."""
+        self._drain()  # the deferred samples belong in those windows
         out: list[dict[str, Any]] = []
+        if self._carry:  # (none by construction: deferred samples emit nothing)
+            carry, self._carry = sorted(self._carry, key=lambda r: (r[0], r[1], r[2])), []
+            out.extend(r[3] for r in carry)
         if not np.isfinite(self.last_t):
             return out
         for ch in self.channels or []:
@@ -166,7 +335,10 @@ class Pipeline:
                     ch.restore(state[ch.name])
 
     def snapshot(self) -> dict[str, dict[str, Any]]:
-        """Per-channel state to save; channels not started yet keep what was restored."""
+        """Per-channel state to save; channels not started yet keep what was restored.
+
+        No need to condition deferred samples first: a channel's samples are deferred only
+        while they provably change neither its numbering, its level nor its measures."""
         out = dict(self._restore)
         for ch in self.channels or []:
             out[ch.name] = ch.snapshot()
@@ -176,6 +348,9 @@ class Pipeline:
         """Continue from a running pipeline after a config reload: the time base (same source)
         and, for every channel whose name is unchanged, its state (see
         :meth:`ChannelConditioner.adopt`)."""
+        old._drain()
+        self._carry = old._carry
+        old._carry = []
         if old.columns == self.columns and old.time_col == self.time_col:
             self.timebase = old.timebase
             self._held = old._held
@@ -186,6 +361,16 @@ class Pipeline:
         self._adopt = {c.name: c for c in (old.channels or []) if c.name in names}
         if self.timebase.ready:
             self._start_channels()
+            # A channel whose settings, stats settings and sample rate are all unchanged goes
+            # on as it was: the same conditioner object, so its stats window (sample counts),
+            # noise estimate, filter, band and measures continue exactly as without a reload.
+            same_stats = old.cfg.stats == self.cfg.stats
+            old_by_name = {c.name: c for c in old.channels or []}
+            assert self.channels is not None
+            for i, ch in enumerate(self.channels):
+                prev = old_by_name.get(ch.name)
+                if same_stats and prev is not None and prev.cfg == ch.cfg and prev.period == ch.period:
+                    self.channels[i] = prev
 
     def edges_by_channel(self) -> dict[str, int]:
         return {c.name: c.edges for c in self.channels or []} or {
@@ -193,12 +378,14 @@ class Pipeline:
         }
 
 
-def _stamp(tagged: list[tuple[int, int, int, dict[str, Any]]], t: np.ndarray, host: np.ndarray) -> None:
+def _stamp(tagged: list[tuple[int, int, int, dict[str, Any]]], t: np.ndarray, host: np.ndarray,
+           base: int = 0) -> None:
     """``utc`` of every record: the wall-clock time of its ``t``, from the host receive time of
-    the sample at which it was emitted shifted by ``t`` minus that sample's time."""
+    the sample at which it was emitted shifted by ``t`` minus that sample's time (records are
+    tagged with global sample indices; ``base`` is the block's first)."""
     last = t.size - 1
     for i, _, _, rec in tagged:
-        k = min(max(i, 0), last)
+        k = min(max(i - base, 0), last)
         rt = rec.get("t")
         h = float(host[k])
         if isinstance(rt, float) and np.isfinite(rt):

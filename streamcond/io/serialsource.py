@@ -52,6 +52,8 @@ from typing import TYPE_CHECKING, Any, Union
 
 import numpy as np
 
+from ..ratelimit import RateLimitedLog
+
 if TYPE_CHECKING:
     from ..config import Source
 
@@ -228,6 +230,19 @@ class LineFramer:
 
 # --- the port reader --------------------------------------------------------------------------
 
+
+def _name_os_thread(name: str) -> None:
+    """Give the calling thread an OS-visible name (Linux ``prctl(PR_SET_NAME)``, 15 bytes), so
+    per-thread CPU in ``/proc/<pid>/task/*/comm`` and ``top -H`` says which thread is which."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(15, name.encode()[:15], 0, 0, 0)  # 15 = PR_SET_NAME (linux/prctl.h)
+    except (OSError, AttributeError):  # not Linux: the name is cosmetic
+        pass
+
+
 _STOP = object()  # end of the event stream
 
 
@@ -254,8 +269,8 @@ class SerialSource:
     kind (a bad setting: :class:`ValueError`) end the source and are raised from
     :meth:`events`.
 
-    Logging is rate-limited: the loss once, then "still waiting" at most once per
-    ``log_every_s``, and the return once.
+    Logging is rate-limited (:class:`streamcond.ratelimit.RateLimitedLog`): the loss once,
+    then "still waiting" at most once per ``log_every_s``, and the return once.
 
     ``stop()`` ends the thread at once (pyserial's ``cancel_read`` wakes a blocked read, a
     :class:`threading.Event` wakes a backoff wait) and the thread closes the port.
@@ -275,10 +290,17 @@ class SerialSource:
         max_backoff_s: float = 2.0,
         log_every_s: float = 60.0,
         coalesce_s: float = 0.004,
+        sink: Callable[[SourceEvent], None] | None = None,
     ) -> None:
         """``source`` is the config's :class:`streamcond.config.Source` (``port``, ``baud``,
         ``parity``, ``bytesize``, ``stopbits``) or just a port (device path or pyserial URL,
-        then 115200 8N1 unless given); framing keywords override the config's values."""
+        then 115200 8N1 unless given); framing keywords override the config's values.
+
+        ``sink``: called in the reader thread with every :data:`SourceEvent` instead of
+        queueing it for :meth:`events` (which then only ends at stop, or raises what the
+        thread raised). For a consumer whose work is itself blocking-free and thread-safe
+        (the daemon's conditioning): it saves an event-loop wake-up per read. An exception
+        from the sink ends the source like any other unexpected exception."""
         if isinstance(source, str):
             port, cfg = source, None
         else:
@@ -306,6 +328,11 @@ class SerialSource:
         #: Shortest time between two hand-overs of data to the event loop while bytes keep
         #: coming (bounds the wake-ups; a line is never held longer than this).
         self.coalesce_s = float(coalesce_s)
+        self._sink = sink
+        #: ``time.monotonic()`` of the reader loop's latest turn (a read returned or an open
+        #: was tried): the daemon's watchdog checks that the reader is alive.
+        self.heartbeat = time.monotonic()
+        self._waiting_log = RateLimitedLog(log, self.log_every_s, first=0)
         #: Clock time just before the last successful open (``None`` until then); see
         #: :class:`Back` for why "before".
         self.opened_at: float | None = None
@@ -388,6 +415,10 @@ class SerialSource:
 
     # -- the reader thread -------------------------------------------------------------------
     def _post(self, item: Any) -> None:
+        if self._sink is not None and isinstance(item, (Data, Lost, Back)):
+            # Consumed right here in the reader thread: no hand-over, no event-loop wake-up.
+            self._sink(item)
+            return
         loop, q = self._loop, self._queue
         assert loop is not None and q is not None
         try:
@@ -430,11 +461,11 @@ class SerialSource:
         """Open the port, retrying with backoff; False when stopped first."""
         delay = self.min_backoff_s
         lost_at: float | None = None  # monotonic, for the log only
-        next_log = 0.0
         if not first:
             lost_at = time.monotonic()
-            next_log = lost_at + self.log_every_s
+            self._waiting_log.start()
         while not self._stop.is_set():
+            self.heartbeat = time.monotonic()
             # Taken before opening: open() flushes the input, so every byte read later
             # arrived after this instant (a valid ``t_start`` for the framer).
             t = self.clock()
@@ -444,13 +475,13 @@ class SerialSource:
                 now = time.monotonic()
                 if lost_at is None:
                     # could not open at start: lost from the start
-                    lost_at, next_log = now, now + self.log_every_s
+                    lost_at = now
+                    self._waiting_log.start()
                     log.warning("cannot open %s (%s); will keep retrying", self.port, e)
                     self._post(Lost(self.clock(), f"cannot open: {e}"))
-                elif now >= next_log:
-                    next_log = now + self.log_every_s
-                    log.warning(
-                        "still waiting for %s (down %.0f s; last error: %s)",
+                else:
+                    self._waiting_log.log(
+                        logging.WARNING, "still waiting for %s (down %.0f s; last error: %s)",
                         self.port, now - lost_at, e,
                     )
                 if self._stop.wait(delay):
@@ -473,6 +504,7 @@ class SerialSource:
         return False
 
     def _run(self) -> None:
+        _name_os_thread("serial-reader")
         try:
             if not self._connect(first=True):
                 return
@@ -483,7 +515,14 @@ class SerialSource:
                 try:
                     waiting = ser.in_waiting
                     data = ser.read(waiting or 1)
+                    if data and not waiting:
+                        # woken by the first byte: the rest of its line is usually there
+                        # already; take it in this turn (one hand-over, not two)
+                        more = ser.in_waiting
+                        if more:
+                            data += ser.read(more)
                     t = self.clock()
+                    self.heartbeat = time.monotonic()
                     if data:
                         pending.append(data)
                     # Hand over at most every coalesce_s: each hand-over wakes the event loop,

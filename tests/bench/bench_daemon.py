@@ -1,14 +1,27 @@
-"""Live daemon benchmark: 8 channels × 1,000 samples/s over a pseudo-terminal into a private
-local MQTT broker, in one run.
+"""Live daemon benchmark against the hand-written yardstick, side by side in one run.
 
-Reports the latency from a line written into the pty to the MQTT message of the edge it caused
-(p50, p99), the daemon's CPU use (share of one core, from /proc/<pid>/stat) and peak RSS
-(VmHWM), and then steps the sample rate up to find the highest one the daemon sustains without
-falling behind (edges still arriving within 100 ms at the end of a step).
+Eight channels of CSV lines go into a pseudo-terminal in 1 ms bursts (square waves toggling
+every ``--toggle-ms`` of device time, staggered), into a private local MQTT broker at QoS 1.
+The same workload runs through two programs, alternating A B A B at each rate:
 
-Not part of the test suite (no timed assertions there). Run from the project root:
+* ``daemon`` — ``streamcond run`` with everything on (spool, stats, retained state);
+* ``hand`` — tests/bench/hand_loop.py, the minimal loop an engineer would write for the bare
+  job (pyserial reads, numpy parses each burst, vectorised hysteresis, paho publishes each
+  edge at QoS 1; no spool, no stats).
 
-    python tests/bench/bench_daemon.py [--seconds 20] [--json]
+For each it reports the latency from a line written into the pty to the MQTT message of the
+edge it caused (p50, p99), the CPU use (share of one core, utime+stime from /proc/<pid>/stat,
+and per thread from /proc/<pid>/task) and the peak RSS (VmHWM); then the ratio daemon / hand
+per rate. Read the ratios: the machine is shared.
+
+Not part of the test suite (no timed assertions there). Run from the project root, under the
+benchmark lock:
+
+    flock /tmp/streamcond-bench.lock python tests/bench/bench_daemon.py [--rates 1000,100,10]
+        [--seconds 10] [--reps 2] [--json] [--ramp]
+
+``--ramp`` afterwards steps the daemon's rate up (2 k, 4 k, ...) to find the highest one it
+sustains (edges still arriving within 100 ms at the end of a step).
 """
 
 from __future__ import annotations
@@ -16,6 +29,8 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import statistics
+import subprocess
 import sys
 import tempfile
 import threading
@@ -26,9 +41,10 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))  # tests/ (broker.py, daemon_rig.py)
 
 from broker import Collector, broker_kinds, private_broker  # noqa: E402
-from daemon_rig import DaemonProcess, Pty  # noqa: E402
+from daemon_rig import ROOT, DaemonProcess, Pty  # noqa: E402
 
 CHANNELS = 8
+LOW, HIGH = 0.3, 0.7
 PROFILE = os.environ.get("STREAMCOND_BENCH_PROFILE")  # a path: profile the daemon (cProfile)
 #: Each channel toggles every TOGGLE_MS of device time (``--toggle-ms``): 500 ms gives
 #: 8 × 2 = 16 edges/s (level-type channels, the usual case), 50 ms gives 160 edges/s
@@ -39,7 +55,7 @@ TOGGLE_MS = 500
 def config(path: Path, port: Path, mqtt_port: int, spool: Path, rate_hz: float) -> None:
     cols = ", ".join(f'"c{i}"' for i in range(CHANNELS))
     chans = "".join(
-        f'[[channel]]\nname = "c{i}"\nband = {{ low = 0.3, high = 0.7 }}\n' for i in range(CHANNELS)
+        f'[[channel]]\nname = "c{i}"\nband = {{ low = {LOW}, high = {HIGH} }}\n' for i in range(CHANNELS)
     )
     path.write_text(
         '[station]\nname = "bench"\n'
@@ -70,13 +86,16 @@ class Writer(threading.Thread):
         t0 = time.monotonic()
         last = [None] * CHANNELS
         i = 0
+        # A line end first: a reader that joins mid-stream drops everything up to the first
+        # one (the daemon does, by design), which must not cost it the first toggle.
+        self.pty.write(b"\n")
         while i < n:
             target = t0 + i / self.rate
             now = time.monotonic()
             if target > now:
                 time.sleep(target - now)
-            # every line due by now, in one write
-            due = min(n, int((time.monotonic() - t0) * self.rate) + 1)
+            # every line due by now, in one write (at most 1 ms of lines)
+            due = min(n, max(i + 1, int((time.monotonic() - t0) * self.rate) + 1))
             buf = []
             stamp = time.time()
             for k in range(i, due):
@@ -96,10 +115,23 @@ class Writer(threading.Thread):
         self.behind = time.monotonic() - (t0 + self.seconds)
 
 
-def proc_cpu_s(pid: int) -> float:
-    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+def proc_cpu_s(pid: int, task: str = "") -> float:
+    p = f"/proc/{pid}/task/{task}/stat" if task else f"/proc/{pid}/stat"
+    fields = Path(p).read_text().rsplit(")", 1)[1].split()
     ticks = os.sysconf("SC_CLK_TCK")
     return (int(fields[11]) + int(fields[12])) / ticks  # utime + stime
+
+
+def thread_cpu(pid: int) -> dict[str, tuple[str, float]]:
+    """CPU seconds so far of each thread: {tid: (name, seconds)}."""
+    out = {}
+    for d in Path(f"/proc/{pid}/task").iterdir():
+        try:
+            name = (d / "comm").read_text().strip()
+            out[d.name] = (name, proc_cpu_s(pid, d.name))
+        except OSError:  # the thread ended meanwhile
+            pass
+    return out
 
 
 def proc_hwm_mib(pid: int) -> float:
@@ -109,10 +141,45 @@ def proc_hwm_mib(pid: int) -> float:
     return float("nan")
 
 
-def run_step(tmp: Path, broker, rate_hz: float, seconds: float) -> dict:
-    pty = Pty(tmp / f"tty{int(rate_hz)}")
-    cfgp = tmp / f"bench{int(rate_hz)}.toml"
-    config(cfgp, pty.path, broker.port, tmp / f"spool{int(rate_hz)}.sqlite", rate_hz)
+class HandProcess:
+    """The hand-written loop as a subprocess (same interface as DaemonProcess where used)."""
+
+    def __init__(self, port: Path, mqtt_port: int, log: Path) -> None:
+        self.cmd = [sys.executable, str(HERE / "hand_loop.py"), str(port), str(CHANNELS), str(LOW),
+                    str(HIGH), str(mqtt_port), "bench"]
+        self.log = log
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    def start(self) -> "HandProcess":
+        self._fh = open(self.log, "wb")
+        self.proc = subprocess.Popen(self.cmd, stdout=self._fh, stderr=subprocess.STDOUT, cwd=ROOT,
+                                     env=dict(os.environ, PYTHONUNBUFFERED="1"))
+        return self
+
+    def wait_log(self, text: str, timeout: float) -> None:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if text in self.log.read_text(errors="replace"):
+                return
+            time.sleep(0.05)
+        raise AssertionError(f"{text!r} not in {self.log}")
+
+    def signal(self, sig: int) -> None:
+        assert self.proc is not None
+        self.proc.send_signal(sig)
+
+    def wait(self, timeout: float) -> int:
+        assert self.proc is not None
+        rc = self.proc.wait(timeout=timeout)
+        self._fh.close()
+        return rc
+
+
+def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: str) -> dict:
+    name = f"{side}{int(rate_hz)}{tag}"
+    pty = Pty(tmp / f"tty-{name}")
+    cfgp = tmp / f"bench-{name}.toml"
+    config(cfgp, pty.path, broker.port, tmp / f"spool-{name}.sqlite", rate_hz)
     arrivals: list[list[tuple[int, float]]] = [[] for _ in range(CHANNELS)]
     col = Collector(broker.host, broker.port, ["bench/+/edge"])
 
@@ -127,28 +194,32 @@ def run_step(tmp: Path, broker, rate_hz: float, seconds: float) -> dict:
 
     col._c.on_message = on_message
     col.start()
-    prof = ["-m", "cProfile", "-o", PROFILE] if PROFILE else None
-    daemon = DaemonProcess(cfgp, tmp / f"daemon{int(rate_hz)}.log", prefix=prof).start()
-    daemon.wait_log("opened", 20)
+    if side == "daemon":
+        prof = ["-m", "cProfile", "-o", PROFILE] if PROFILE else None
+        proc = DaemonProcess(cfgp, tmp / f"{name}.log", prefix=prof).start()
+    else:
+        proc = HandProcess(pty.path, broker.port, tmp / f"{name}.log").start()
+    proc.wait_log("opened", 20)
     time.sleep(0.5)
-    pid = daemon.proc.pid
+    pid = proc.proc.pid
     spy = None
-    if os.environ.get("STREAMCOND_BENCH_PYSPY"):  # a path: sample the daemon with py-spy
-        import subprocess
+    if os.environ.get("STREAMCOND_BENCH_PYSPY") and side == "daemon":  # a path: sample with py-spy
         spy = subprocess.Popen(["py-spy", "record", "-p", str(pid), "-o", os.environ["STREAMCOND_BENCH_PYSPY"],
-                                "-f", "raw", "-r", "200", "-d", str(int(seconds))],
+                                "-f", "raw", "-r", "200", "-t", "-d", str(int(seconds))],
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    th0 = thread_cpu(pid)
     cpu0, wall0 = proc_cpu_s(pid), time.monotonic()
     w = Writer(pty, rate_hz, seconds)
     w.start()
     w.join()
     cpu1, wall1 = proc_cpu_s(pid), time.monotonic()
+    th1 = thread_cpu(pid)
     if spy is not None:
         spy.wait(timeout=30)
     time.sleep(1.0)  # let the tail arrive
     hwm = proc_hwm_mib(pid)
-    daemon.signal(15)
-    daemon.wait(20)
+    proc.signal(15)
+    proc.wait(20)
     col.close()
     pty.unplug()
     lat = []
@@ -171,7 +242,13 @@ def run_step(tmp: Path, broker, rate_hz: float, seconds: float) -> dict:
             late_tail.append(float("inf") if t is None else t - tw)
     lat.sort()
     q = lambda p: lat[min(len(lat) - 1, int(p * len(lat)))] * 1000 if lat else float("nan")  # noqa: E731
+    wall = wall1 - wall0
+    threads = {}
+    for tid, (nm, s1) in th1.items():
+        s0 = th0.get(tid, (nm, 0.0))[1]
+        threads[f"{nm}[{tid}]"] = (s1 - s0) / wall
     return {
+        "side": side,
         "rate_hz": rate_hz,
         "lines": w.lines,
         "edges_expected": sum(len(x) for x in w.toggle_times),
@@ -180,54 +257,110 @@ def run_step(tmp: Path, broker, rate_hz: float, seconds: float) -> dict:
         "latency_p99_ms": q(0.99),
         "latency_max_ms": lat[-1] * 1000 if lat else float("nan"),
         "tail_latency_ms": max(late_tail) * 1000 if late_tail else float("nan"),
-        "cpu_share_of_one_core": (cpu1 - cpu0) / (wall1 - wall0),
+        "cpu_share_of_one_core": (cpu1 - cpu0) / wall,
+        "threads_share_of_one_core": dict(sorted(threads.items(), key=lambda kv: -kv[1])),
         "peak_rss_mib": hwm,
         "writer_behind_s": w.behind,
     }
 
 
+def summarise(runs: list[dict]) -> dict:
+    by: dict[tuple[str, float], list[dict]] = {}
+    for r in runs:
+        by.setdefault((r["side"], r["rate_hz"]), []).append(r)
+    table = []
+    for rate in sorted({r["rate_hz"] for r in runs}, reverse=True):
+        d, h = by.get(("daemon", rate), []), by.get(("hand", rate), [])
+        if not d or not h:
+            continue
+        dc = statistics.mean(x["cpu_share_of_one_core"] for x in d)
+        hc = statistics.mean(x["cpu_share_of_one_core"] for x in h)
+        table.append({
+            "rate_hz": rate,
+            "daemon_cpu": dc,
+            "hand_cpu": hc,
+            "ratio": dc / hc if hc > 0 else float("inf"),
+            "ratios_per_pair": [a["cpu_share_of_one_core"] / b["cpu_share_of_one_core"]
+                                if b["cpu_share_of_one_core"] > 0 else float("inf") for a, b in zip(d, h)],
+            "daemon_p99_ms": max(x["latency_p99_ms"] for x in d),
+            "hand_p99_ms": max(x["latency_p99_ms"] for x in h),
+            "daemon_rss_mib": max(x["peak_rss_mib"] for x in d),
+            "hand_rss_mib": max(x["peak_rss_mib"] for x in h),
+            "daemon_missing": sum(x["edges_missing"] for x in d),
+            "hand_missing": sum(x["edges_missing"] for x in h),
+        })
+    return {"table": table}
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--seconds", type=float, default=20.0, help="length of the 1 kHz run")
-    ap.add_argument("--step-seconds", type=float, default=6.0, help="length of each rate step")
-    ap.add_argument("--json", action="store_true")
+    ap.add_argument("--rates", default="1000,100,10", help="samples/s per channel, comma-separated")
+    ap.add_argument("--seconds", type=float, default=10.0, help="length of each run")
+    ap.add_argument("--reps", type=int, default=2, help="A/B pairs per rate")
+    ap.add_argument("--sides", default="daemon,hand", help="which programs to run")
+    ap.add_argument("--ramp", action="store_true", help="afterwards step the daemon's rate up")
+    ap.add_argument("--step-seconds", type=float, default=6.0, help="length of each ramp step")
     ap.add_argument("--max-rate", type=float, default=32000.0)
+    ap.add_argument("--json", action="store_true")
     ap.add_argument("--toggle-ms", type=int, default=500, help="half-period of each channel's square wave")
     args = ap.parse_args()
     global TOGGLE_MS
     TOGGLE_MS = args.toggle_ms
-    out: dict = {}
+    rates = [float(x) for x in args.rates.split(",") if x]
+    sides = [s for s in args.sides.split(",") if s]
+    out: dict = {"toggle_ms": TOGGLE_MS, "channels": CHANNELS, "seconds": args.seconds}
+    runs: list[dict] = []
     with tempfile.TemporaryDirectory(prefix="streamcond-bench-") as d:
         tmp = Path(d)
         with private_broker(broker_kinds()[0], tmp / "broker") as broker:
             out["broker"] = broker.kind
-            out["at_1khz"] = run_step(tmp, broker, 1000.0, args.seconds)
+            for rate in rates:
+                for rep in range(args.reps):
+                    # A B, then B A: neither side always runs first
+                    order = sides if rep % 2 == 0 else sides[::-1]
+                    for side in order:
+                        r = run_step(tmp, broker, side, rate, args.seconds, f"-{rep}")
+                        runs.append(r)
+                        if not args.json:
+                            top = ", ".join(f"{k} {v * 100:.1f}%" for k, v in
+                                            list(r["threads_share_of_one_core"].items())[:4])
+                            print(f"  {side:6s} {rate:6.0f}/s: CPU {r['cpu_share_of_one_core'] * 100:5.1f} %  "
+                                  f"p50 {r['latency_p50_ms']:5.1f} ms  p99 {r['latency_p99_ms']:5.1f} ms  "
+                                  f"RSS {r['peak_rss_mib']:5.1f} MiB  missing {r['edges_missing']}  "
+                                  f"threads: {top}", flush=True)
             steps = []
-            rate = 2000.0
-            sustained = 1000.0
-            while rate <= args.max_rate:
-                r = run_step(tmp, broker, rate, args.step_seconds)
-                steps.append(r)
-                ok = r["edges_missing"] == 0 and r["tail_latency_ms"] < 100 and r["writer_behind_s"] < 0.5
-                if not ok:
-                    break
-                sustained = rate
-                rate *= 2
+            if args.ramp:
+                rate = 2000.0
+                sustained = 1000.0
+                while rate <= args.max_rate:
+                    r = run_step(tmp, broker, "daemon", rate, args.step_seconds, "-ramp")
+                    steps.append(r)
+                    ok = r["edges_missing"] == 0 and r["tail_latency_ms"] < 100 and r["writer_behind_s"] < 0.5
+                    if not ok:
+                        break
+                    sustained = rate
+                    rate *= 2
+                out["highest_sustained_rate_hz"] = sustained
             out["steps"] = steps
-            out["highest_sustained_rate_hz"] = sustained
+    out["runs"] = runs
+    out.update(summarise(runs))
     if args.json:
         print(json.dumps(out, indent=2))
     else:
-        a = out["at_1khz"]
-        print(f"broker: {out['broker']}; {CHANNELS} channels × 1,000 samples/s for {args.seconds:g} s, "
-              f"each toggling every {TOGGLE_MS} ms ({CHANNELS * 1000 // TOGGLE_MS} edges/s):")
-        print(f"  latency line→MQTT  p50 {a['latency_p50_ms']:.1f} ms   p99 {a['latency_p99_ms']:.1f} ms"
-              f"   max {a['latency_max_ms']:.1f} ms   ({a['edges_expected']} edges, {a['edges_missing']} missing)")
-        print(f"  daemon CPU {a['cpu_share_of_one_core'] * 100:.1f} % of one core, peak RSS {a['peak_rss_mib']:.0f} MiB")
+        print(f"broker: {out['broker']}; {CHANNELS} channels, each toggling every {TOGGLE_MS} ms "
+              f"({CHANNELS * 1000 // TOGGLE_MS} edges/s), {args.seconds:g} s per run, {args.reps} A/B pair(s) per rate")
+        print("| rate per channel | daemon CPU | hand loop CPU | ratio (pairs) | daemon p99 | hand p99 | daemon peak RSS |")
+        print("|---|---|---|---|---|---|---|")
+        for t in out["table"]:
+            pairs = ", ".join(f"{x:.2f}" for x in t["ratios_per_pair"])
+            print(f"| {t['rate_hz']:,.0f} samples/s | {t['daemon_cpu'] * 100:.1f} % | {t['hand_cpu'] * 100:.1f} % | "
+                  f"{t['ratio']:.2f}× ({pairs}) | {t['daemon_p99_ms']:.1f} ms | {t['hand_p99_ms']:.1f} ms | "
+                  f"{t['daemon_rss_mib']:.0f} MiB |")
         for r in out["steps"]:
-            print(f"  {r['rate_hz']:8.0f} samples/s: p99 {r['latency_p99_ms']:7.1f} ms, tail {r['tail_latency_ms']:7.1f} ms,"
+            print(f"  ramp {r['rate_hz']:8.0f} samples/s: p99 {r['latency_p99_ms']:7.1f} ms, tail {r['tail_latency_ms']:7.1f} ms,"
                   f" CPU {r['cpu_share_of_one_core'] * 100:5.1f} %, missing {r['edges_missing']}")
-        print(f"  highest rate sustained: {out['highest_sustained_rate_hz']:.0f} samples/s × {CHANNELS} channels")
+        if args.ramp:
+            print(f"  highest rate sustained: {out['highest_sustained_rate_hz']:.0f} samples/s × {CHANNELS} channels")
     return 0
 
 
