@@ -431,7 +431,7 @@ def test_username_and_password_file(tmp_path: Path, caplog: pytest.LogCaptureFix
 
 
 def test_window_keeps_order_with_qos0_and_qos1(mqtt_broker: PrivateBroker, tmp_path: Path) -> None:
-    """A mixed stream (QoS 0 stats between QoS 1 edges) with a full window stays in order."""
+    """A mixed stream (QoS 0 stats between QoS 1 edges) with a full window stays in order per topic."""
     b = mqtt_broker
 
     async def scenario() -> None:
@@ -451,7 +451,15 @@ def test_window_keeps_order_with_qos0_and_qos1(mqtt_broker: PrivateBroker, tmp_p
                 await c.await_for(lambda: len([m for m in c.messages if m.topic in topics]) >= 800,
                                   WAIT, "800 messages")
                 got = [(m.topic, m.payload) for m in c.snapshot() if m.topic in topics]
-                assert got == [(t, p) for t, p, *_ in items]
+                # MQTT 3.1.1 section 4.6 (from memory): a broker keeps the order of the messages
+                # of one topic at one QoS; across topics of different QoS it need not (mosquitto
+                # queues QoS 1 behind its per-client in-flight limit while QoS 0 goes on). So the
+                # promise is per topic, and every message delivered exactly as sent.
+                for topic in topics:
+                    assert [p for t, p in got if t == topic] == [
+                        p for t, p, *_ in items if t == topic
+                    ]
+                assert len(got) == len(items)
                 await pub.shutdown(5.0)
                 assert len(spool) == 0 and pub.acked == 800
             finally:
