@@ -556,8 +556,10 @@ def _check(args: argparse.Namespace) -> int:
         return probe_main(args)
     from .config import load_config
     from .describe import describe_config
+    from .validate import validate
 
     cfg = load_config(args.config)
+    validate(cfg)  # what only building the channels or opening the files shows
     print(describe_config(cfg, as_json=args.json))
     return EXIT_OK
 

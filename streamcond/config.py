@@ -25,6 +25,13 @@ from pydantic import (
 
 NAME_PATTERN = r"^[A-Za-z0-9_-]+$"
 
+#: Bounds that keep absurd-but-valid numbers out of the core (an overflow to infinity when a
+#: duration is turned into a sample count, a period that rounds to nothing). A serial line
+#: carries at most about 10^5 lines a second (1 Mbaud, ten bits a byte, ten bytes a line), so
+#: 10^6 samples a second is a generous ceiling; 10^8 s is more than three years.
+MAX_SAMPLE_RATE_HZ = 1e6
+MAX_DURATION_S = 1e8
+
 
 class _Model(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
@@ -51,8 +58,8 @@ class Source(_Model):
     format: Literal["csv", "kv", "json"] = "csv"
     columns: list[Annotated[str, Field(min_length=1)]] | None = None
     time_column: str | None = None
-    time_scale: float = Field(1.0, gt=0)
-    sample_rate_hz: float | None = Field(None, gt=0)
+    time_scale: float = Field(1.0, gt=0, le=1e6)
+    sample_rate_hz: float | None = Field(None, gt=0, le=MAX_SAMPLE_RATE_HZ)
     #: A step in sample time larger than this many nominal sample periods is a gap.
     gap_after_periods: float = Field(3.0, gt=1)
 
@@ -102,12 +109,12 @@ class MedianFilter(_Model):
 
 class EmaFilter(_Model):
     kind: Literal["ema"]
-    tau_s: float = Field(gt=0)
+    tau_s: float = Field(gt=0, le=MAX_DURATION_S)
 
 
 class LowpassFilter(_Model):
     kind: Literal["lowpass"]
-    cutoff_hz: float = Field(gt=0)
+    cutoff_hz: float = Field(gt=0, le=MAX_SAMPLE_RATE_HZ)
     order: int = Field(2, ge=1, le=8)
 
 
@@ -175,7 +182,7 @@ class AdaptiveBand(_Model):
     mode: Literal["adaptive"]
     center: float
     k: float = Field(6.0, gt=0)
-    window_s: float = Field(5.0, gt=0)
+    window_s: float = Field(5.0, gt=0, le=MAX_DURATION_S)
     min_width: float = Field(0.0, ge=0)
     max_width: float | None = Field(None, gt=0)
     #: Width in force before the first reliable noise estimate (warm-up); without it no
@@ -204,8 +211,8 @@ BandSpec = Annotated[
 class Dwell(_Model):
     """Time qualification: how long the signal must stay past a threshold before an edge counts."""
 
-    rise_s: float = Field(0.0, ge=0)
-    fall_s: float = Field(0.0, ge=0)
+    rise_s: float = Field(0.0, ge=0, le=MAX_DURATION_S)
+    fall_s: float = Field(0.0, ge=0, le=MAX_DURATION_S)
 
 
 RATE_PER_S = {"s": 1.0, "min": 60.0, "h": 3600.0}
@@ -229,7 +236,7 @@ class Measure(_Model):
     #: the rate is given per "s", "min" or "h" (default "min": L/min, rpm)
     rate_per: Literal["s", "min", "h"] = "min"
     #: no rising edge for longer than this: the rate is 0 (a stopped shaft is 0 rpm)
-    stale_s: float = Field(2.0, gt=0)
+    stale_s: float = Field(2.0, gt=0, le=MAX_DURATION_S)
 
     @model_validator(mode="after")
     def _one_scale(self) -> "Measure":
@@ -304,18 +311,18 @@ class Channel(_Model):
 
 
 class Stats(_Model):
-    interval_s: float = Field(10.0, gt=0)
+    interval_s: float = Field(10.0, gt=0, le=MAX_DURATION_S)
     #: Chattering: this many activations (rising edges) within chatter_window_s. Three within
     #: 60 s is the common alarm-management criterion (ISA-18.2 practice, from memory).
     chatter_count: int = Field(3, ge=2)
-    chatter_window_s: float = Field(60.0, gt=0)
+    chatter_window_s: float = Field(60.0, gt=0, le=MAX_DURATION_S)
     #: Window of the noise estimate in the stats of a channel with a fixed band (an adaptive
     #: band uses its own window_s): at least 128 samples, and long compared with the noise's
     #: correlation time — a 1 s window reads low-pass noise far too low.
-    noise_window_s: float = Field(5.0, gt=0)
+    noise_window_s: float = Field(5.0, gt=0, le=MAX_DURATION_S)
     #: ... refreshed every this many seconds of sample time (at least once per stats window):
     #: noise changes slowly, and one estimate costs a few milliseconds of a replay.
-    noise_refresh_s: float = Field(60.0, gt=0)
+    noise_refresh_s: float = Field(60.0, gt=0, le=MAX_DURATION_S)
 
 
 class Mqtt(_Model):
@@ -332,6 +339,11 @@ class Mqtt(_Model):
     keepalive_s: int = Field(30, ge=5)
     spool_path: str = "state/spool.sqlite"
     spool_max_records: int = Field(1_000_000, ge=100)
+    #: "always": the spool's log is synced to the disk at every commit (survives a power cut;
+    #: one fsync per batch of records). "interval": synced at most every
+    #: spool_sync_interval_ms (a power cut may lose that much; a crash or SIGKILL loses nothing).
+    spool_sync: Literal["always", "interval"] = "always"
+    spool_sync_interval_ms: int = Field(1000, ge=10, le=60_000)
 
 
 class Rotate(_Model):

@@ -38,6 +38,7 @@ from .io.lineparse import HOST_T, LineParser
 from .io.eventlog import EventLog, from_config as events_writer
 from .replay import check_columns, make_parser
 from .sdnotify import Notifier
+from .validate import validate
 
 log = logging.getLogger("streamcond.daemon")
 
@@ -105,6 +106,7 @@ class Daemon:
     def __init__(self, config_path: str | Path, notifier: Notifier | None = None) -> None:
         self.config_path = Path(config_path)
         self.cfg = load_config(self.config_path)
+        validate(self.cfg)
         if self.cfg.source.kind != "serial":
             raise ConfigError(
                 "streamcond run reads a serial source (source.kind = \"serial\"); "
@@ -137,12 +139,12 @@ class Daemon:
 
 
     def _open_outputs(self) -> None:
-        from .io.spool import Spool
+        from .io.spool import Spool, spool_options
 
         path = store_path(self.cfg)
-        max_records = self.cfg.output.mqtt.spool_max_records if self.cfg.output.mqtt else 1_000_000
+        mq = self.cfg.output.mqtt
         try:
-            self.spool = Spool(path, max_records=max_records)
+            self.spool = Spool(path, **spool_options(mq)) if mq else Spool(path)
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
         self.saved_state = self.spool.load_state()
@@ -311,6 +313,7 @@ class Daemon:
     async def _reload(self) -> None:
         try:
             new = load_config(self.config_path)
+            validate(new, self.pipeline.sample_rate_hz if self.pipeline is not None else None)
             if new.source.kind != "serial":
                 raise ConfigError("source.kind must stay \"serial\" for a running daemon")
             pipeline = None

@@ -139,7 +139,9 @@ def run_replay(
     ``speed`` paces the replay by sample time (1.0 = real time, 10 = ten times faster).
     """
     from .core.pipeline import Pipeline
+    from .validate import validate
 
+    validate(cfg, files=False)  # a replay opens no MQTT files
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
     # rows with the host receive time as a last column: a text capture always (see
     # open_recording), any other capture when that time is the sample time

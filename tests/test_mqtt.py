@@ -515,3 +515,124 @@ def test_tls_with_ca_and_client_certificate(tmp_path: Path) -> None:
                 spool.close()
 
         asyncio.run(scenario())
+
+
+# --- recovery after an outage (issue 9, item 8) -----------------------------------------------
+
+
+def test_a_backlog_sends_every_edge_and_skips_only_superseded_states(
+    mqtt_broker: PrivateBroker, tmp_path: Path
+) -> None:
+    """After an outage, states that a later state of the same channel supersedes are not sent;
+    every edge is, in order, and the retained state a late subscriber gets is the level after
+    the last edge (MQTT 3.1.1 §3.3.1.3: the broker keeps the last retained message of a topic)."""
+    from streamcond.io.mqtt import BACKLOG
+
+    b = mqtt_broker
+    n = BACKLOG  # edges; with their states twice BACKLOG records: a backlog
+    recs = [*edges("level", 1, n), *edges("flow", 1, 3)]
+
+    async def scenario() -> None:
+        spool = Spool(tmp_path / "spool.sqlite")
+        spool_records(spool, None, recs, 1)  # stored while the broker was "away"
+        pub = Publisher(mqtt_cfg(b.host, b.port), PREFIX, spool)
+        with Collector(b.host, b.port, [PREFIX + "/#"]) as c:
+            task = asyncio.create_task(pub.run(asyncio.Event()))
+            try:
+                await c.await_for(
+                    lambda: len(spool) == 0 and len(seqs_on(c, f"{PREFIX}/level/edge")) >= n
+                    and len(seqs_on(c, f"{PREFIX}/flow/edge")) >= 3
+                    and seqs_on(c, f"{PREFIX}/flow/state")[-1:] == [3]
+                    and seqs_on(c, f"{PREFIX}/level/state")[-1:] == [n],
+                    WAIT, "the backlog")
+                assert seqs_on(c, f"{PREFIX}/level/edge") == list(range(1, n + 1))
+                assert seqs_on(c, f"{PREFIX}/flow/edge") == [1, 2, 3]
+                states = seqs_on(c, f"{PREFIX}/level/state")
+                assert states[-1] == n and len(states) < n // 2  # the rest were superseded
+                assert pub.counters.superseded >= n // 2
+                assert pub.acked == 2 * len(recs)  # skipped states are acknowledged too
+                ret = await late_retained(b.host, b.port)
+                assert json.loads(ret[f"{PREFIX}/level/state"].payload)["seq"] == n
+                assert json.loads(ret[f"{PREFIX}/flow/state"].payload)["seq"] == 3
+                # live again: a single edge and its state are both sent
+                spool_records(spool, pub, edges("level", n + 1, 1), 1)
+                await c.await_for(lambda: seqs_on(c, f"{PREFIX}/level/state")[-1:] == [n + 1],
+                                  WAIT, "the live state")
+                assert seqs_on(c, f"{PREFIX}/level/edge")[-1] == n + 1
+            finally:
+                await stop_task(task)
+                spool.close()
+
+    asyncio.run(scenario())
+
+
+def _endpoint(mode: str) -> tuple[Any, int, list[Any]]:
+    """A TCP port that accepts and then closes at once ("close") or never answers ("silent")."""
+    import socket
+    import threading
+
+    ls = socket.socket()
+    ls.bind(("127.0.0.1", 0))
+    ls.listen(8)
+    held: list[Any] = []
+
+    def serve() -> None:
+        while True:
+            try:
+                conn, _ = ls.accept()
+            except OSError:
+                return
+            if mode == "close":
+                conn.close()
+            else:
+                held.append(conn)
+
+    threading.Thread(target=serve, daemon=True).start()
+    return ls, ls.getsockname()[1], held
+
+
+@pytest.mark.parametrize("mode", ["close", "silent"])
+def test_a_half_open_endpoint_ends_the_attempt(tmp_path: Path, mode: str) -> None:
+    # "close": the attempt fails with the closed-before-CONNACK error (it no longer waits for
+    # the connect timeout); "silent": it ends with the connect timeout.
+    ls, port, held = _endpoint(mode)
+
+    async def attempt() -> str:
+        spool = Spool(tmp_path / "spool.sqlite")
+        pub = Publisher(mqtt_cfg("127.0.0.1", port), PREFIX, spool, connect_timeout_s=1.0)
+        try:
+            with pytest.raises(Exception) as e:
+                await asyncio.wait_for(pub._session(asyncio.Event()), WAIT)
+            assert not isinstance(e.value, asyncio.TimeoutError)  # it ended by itself
+            return str(e.value)
+        finally:
+            spool.close()
+
+    try:
+        msg = asyncio.run(attempt())
+    finally:
+        ls.close()
+        for s in held:
+            s.close()
+    if mode == "close":
+        assert "closed before the broker answered CONNECT" in msg, msg
+    else:
+        assert "closed before" not in msg, msg
+
+
+def test_the_clients_own_socket_errors_are_rate_limited(caplog: pytest.LogCaptureFixture) -> None:
+    from streamcond.io.mqtt import _QuietLog
+
+    now = [100.0]
+    q = _QuietLog(logging.getLogger("streamcond.io.mqtt.client"), 60.0, clock=lambda: now[0])
+    caplog.set_level(logging.DEBUG, logger="streamcond.io.mqtt.client")
+    for _ in range(5):  # paho's own words, at ERROR every time
+        q.log(logging.ERROR, "failed to receive on socket: %s", "[Errno 104] Connection reset")
+        now[0] += 1.0
+    levels = [r.levelno for r in caplog.records]
+    assert levels == [logging.WARNING] + [logging.DEBUG] * 4
+    now[0] += 60.0
+    caplog.clear()
+    q.log(logging.ERROR, "failed to receive on socket: %s", "[Errno 104] Connection reset")
+    (r,) = caplog.records
+    assert r.levelno == logging.WARNING and "4 more like it" in r.getMessage()

@@ -205,3 +205,15 @@ def test_compare_reads_parquet_as_it_reads_the_text(tmp_path):
     recs = json.loads(r.stdout)["recordings"]
     assert len(recs) == 2 and recs[0]["channels"] == recs[1]["channels"]
     assert recs[0]["channels"]["flow"]["edges_a"] == 3533  # the demo summary: flow 3,533 edges
+
+
+def test_small_blocks_never_import_pyarrow():
+    # the live daemon parses a few lines every few ms: pyarrow would cost it ~60-90 MiB of
+    # resident memory for no gain (the auto reader takes it for blocks of 256 KiB and more)
+    code = ("import sys; from streamcond.io.lineparse import LineParser; "
+            "p = LineParser('csv', columns=['t', 'a']); p.feed(b'0,1\\n1,2\\n' * 1000); "
+            "print('pyarrow' in sys.modules); p.feed(b'0,1\\n' * 100000); "
+            "print('pyarrow' in sys.modules)")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
+                       env={**__import__("os").environ, "STREAMCOND_CSV_READER": ""})
+    assert r.stdout.split() == ["False", "True"], r.stderr

@@ -18,7 +18,6 @@ import numpy as np
 
 from .. import records
 from ..config import Config
-from ..errors import ConfigError
 from ..io.lineparse import HOST_T
 from .channel import ChannelConditioner
 from .timebase import Timebase
@@ -66,15 +65,11 @@ class Pipeline:
     def _start_channels(self) -> None:
         fs = self.sample_rate_hz
         assert fs is not None
-        channels = []
-        for i, ch in enumerate(self.cfg.channel):
-            try:
-                channels.append(ChannelConditioner(ch, fs, self.cfg.stats))
-            except ValueError as e:
-                # settings that only the sample rate shows to be impossible
-                msg = str(e)
-                msg = msg.replace("{at}", f"channel[{i}]") if "{at}" in msg else f"channel[{i}].filter: {msg}"
-                raise ConfigError([msg]) from None
+        from ..validate import start_channels
+
+        # settings that only the sample rate shows to be impossible: sentences naming the keys
+        rate_from = "source.sample_rate_hz" if self.cfg.source.sample_rate_hz else "the measured sample rate"
+        channels = start_channels(self.cfg, fs, rate_from)
         for ch in channels:
             if ch.name in self._adopt:
                 ch.adopt(self._adopt[ch.name])

@@ -94,6 +94,11 @@ def read_columnar_blocks(
 ) -> Iterator[tuple[Parsed, int, int]]:
     """Like :func:`streamcond.io.recording.read_blocks` for a Parquet/Arrow IPC file.
     ``host_time``: the rows carry the host receive time as a last column (captures)."""
+    import pyarrow as pa
+    import pyarrow.compute as pac
+
+    from .fastcsv import arrow_to_numpy
+
     p = Path(path)
     src = _Source(p, kind)
     if src.meta.get(META_KEY) == CAPTURE:
@@ -117,16 +122,17 @@ def read_columnar_blocks(
         rows = np.empty((n, len(read)), np.float64)
         valid = np.ones(n, bool)
         for i, col in enumerate(batch.columns):
-            arr = col
-            if arr.null_count:
-                valid &= ~np.asarray(arr.is_null().to_numpy(zero_copy_only=False))
-                arr = arr.fill_null(0)
             try:
-                rows[:, i] = arr.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
-            except (TypeError, ValueError):
+                arr = col if col.type == pa.float64() else col.cast(pa.float64())
+            except (pa.ArrowException, TypeError, ValueError):
                 raise InputError(
                     f"The recording {str(p)!r}: column {read[i]!r} is not numeric"
                 ) from None
+            if arr.null_count:
+                nulls = arrow_to_numpy(pac.indices_nonzero(arr.is_null()), np.uint64)
+                valid[nulls.astype(np.int64)] = False
+                arr = arr.fill_null(0.0)
+            rows[:, i] = arrow_to_numpy(arr)
         numbers = np.arange(done_rows + 1, done_rows + n + 1)
         out = Parsed(np.empty((0, len(read))))
         if not valid.all():
@@ -144,12 +150,18 @@ def read_columnar_blocks(
 
 
 def _capture_blocks(p: Path, src: _Source, parser: LineParser, host_time: bool):
+    import pyarrow as pa
+
+    from .fastcsv import arrow_to_numpy
     from .recording import check_end
 
     done_rows = 0
     rows = 0
     for batch in src.batches(["t_host", "line"]):
-        times = batch.column(0).to_numpy(zero_copy_only=False).astype(np.float64)
+        tcol = batch.column(0)
+        if tcol.null_count:
+            tcol = tcol.fill_null(float("nan"))
+        times = arrow_to_numpy(tcol.cast(pa.float64())).copy()
         lines = [b if b is not None else b"" for b in batch.column(1).to_pylist()]
         keep = np.isfinite(times)
         if not keep.all():

@@ -37,25 +37,36 @@ acknowledgements stream back while later messages are already on the wire.
 
 Ordering: MQTT 3.1.1 §4.6 (OASIS standard, 2014) has the broker forward the messages of one
 client on a topic in the order it received them, and one TCP connection delivers packets in
-order. The publisher writes PUBLISH packets in spool-id order (the publish coroutines are
-started as tasks in that order, and asyncio runs ready callbacks first-in first-out, so each
-reaches the underlying client's synchronous ``publish`` in order) and acknowledges in the
-spool only the *contiguous* prefix of completed messages. After a connection loss everything
-not acknowledged is sent again from the oldest un-acknowledged item, on a fresh session:
+order. The publisher hands spool items to the paho client's synchronous ``publish`` in
+spool-id order, so the PUBLISH packets go out in that order, and acknowledges in the spool
+only the *contiguous* prefix of completed messages. After a connection loss everything not
+acknowledged is sent again from the oldest un-acknowledged item, on a fresh session:
 delivery is at least once, so consumers drop duplicates by ``seq`` (edges) or ``t``.
 
-aiomqtt facts this relies on (aiomqtt 2.x, read from its ``Client.publish``): ``await
-client.publish(..., qos=1)`` returns only when the underlying paho client reports the
-message published, i.e. after the PUBACK (after the PUBCOMP for QoS 2, after the socket
-write for QoS 0); it waits at most ``timeout`` seconds (default: the client's ``timeout``)
-and raises :class:`aiomqtt.MqttError` on timeout. A publish pending when the connection
-drops is *not* failed by aiomqtt; the loss is seen through ``client.messages``, whose
-iteration raises :class:`aiomqtt.MqttError` on disconnection, so the publisher watches that.
-The paho client's own in-flight limit (``max_inflight_messages``, default 20) is set to the
-window so paho does not hold messages back on its own.
+Catching up: after an outage the spool may hold tens of thousands of records; the issue's
+goal is the backlog delivered within about a second of the broker's return. The cost is per
+message, so (1) spool items go to paho's ``publish`` directly, one ``on_publish`` callback
+marking them done — not one coroutine, task and timeout per message through aiomqtt's
+``publish``; (2) paho's own in-flight limit is switched off (0), because under its limit paho
+rescans every message it holds at each acknowledgement, and the window is kept here; (3) the
+spool is read ahead in pages of :data:`PAGE` and acknowledgements are written in batches of up
+to :data:`ACK_BATCH`, as one range delete each; (4) in a backlog (:data:`BACKLOG` or more
+items read ahead) a retained ``state`` followed by a later ``state`` of the same channel is
+acknowledged without being sent — the broker would replace it at once, and every edge still
+goes out, so a subscriber loses nothing it could not get from the edges.
+
+aiomqtt facts this relies on (aiomqtt 2.x, read from its source): the paho client is
+``Client._client`` and its ``on_publish`` is aiomqtt's, which the publisher wraps for the
+session (the status messages still go through ``await client.publish(..., timeout=...)``,
+which returns after the PUBACK). A publish pending when the connection drops is *not* failed
+by aiomqtt; the loss is seen through ``client.messages``, whose iteration raises
+:class:`aiomqtt.MqttError` on disconnection, so the publisher watches that, and an item not
+acknowledged within ``publish_timeout_s`` ends the session. aiomqtt ignores a disconnection
+before CONNACK and would wait out its whole connect timeout on an endpoint that accepts the
+connection and closes it; the publisher wraps ``on_disconnect`` to fail that attempt at once.
 
 The event loop: spool calls (``peek``, ``ack``) run in a worker thread
-(:func:`asyncio.to_thread`). They are short — a range read of at most ``window`` rows, one
+(:func:`asyncio.to_thread`). They are short — a range read of at most :data:`PAGE` rows, one
 DELETE per batch of acknowledgements, batched so a burst of PUBACKs costs one commit — but the
 spool serialises callers with a lock, and the daemon's ``put_many`` holds it through an fsync
 (``synchronous=FULL``), which on an SD card can take tens of milliseconds; on the loop thread
@@ -77,6 +88,7 @@ import contextlib
 import logging
 import math
 import ssl
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -222,6 +234,7 @@ class PublisherCounters:
     reconnects: int = 0  #: successful connections after the first
     connect_failures: int = 0  #: connection attempts that failed
     connection_losses: int = 0  #: established connections that ended in an error
+    superseded: int = 0  #: retained states not sent: a later state of the channel was queued
     last_error: str | None = None  #: the most recent connection or publish error, as text
     connected: bool = False
 
@@ -233,20 +246,75 @@ class PublisherCounters:
             "reconnects": self.reconnects,
             "connect_failures": self.connect_failures,
             "connection_losses": self.connection_losses,
+            "superseded": self.superseded,
             "last_error": self.last_error,
             "connected": self.connected,
         }
 
 
 @dataclass
-class _InFlight:
+class _Sent:
+    """A spool item handed to the MQTT client, waiting for the broker's acknowledgement."""
+
     item: Any
-    task: asyncio.Task[None]
+    t0: float  #: loop time it was handed over (its acknowledgement is due by t0 + timeout)
+    done: bool = False
 
 
 @dataclass
 class _Session:
-    inflight: collections.deque[_InFlight] = field(default_factory=collections.deque)
+    inflight: collections.deque[_Sent] = field(default_factory=collections.deque)
+
+
+class _QuietLog(logging.LoggerAdapter):
+    """The MQTT client's own logger, rate-limited.
+
+    paho logs every socket error ("failed to receive on socket ...") at ERROR, again at every
+    reconnect attempt while a broker is away; the publisher reports the same failures itself
+    (once per series, see ``Publisher._record_error``). Here each message template is logged
+    at WARNING at most once per :data:`CLIENT_LOG_INTERVAL_S` (with the count held back since),
+    the rest at DEBUG.
+    """
+
+    def __init__(self, logger: logging.Logger, interval_s: float, clock: Any = time.monotonic) -> None:
+        super().__init__(logger, {})
+        self.interval_s = interval_s
+        self._clock = clock
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+
+    def log(self, level: int, msg: Any, *args: Any, **kwargs: Any) -> None:
+        if level >= logging.WARNING:
+            key = str(msg)
+            now = self._clock()
+            last = self._last.get(key)
+            if last is not None and now - last < self.interval_s:
+                self._held[key] = self._held.get(key, 0) + 1
+                level = logging.DEBUG
+            else:
+                self._last[key] = now
+                held = self._held.pop(key, 0)
+                if held:
+                    msg = f"{msg} ({held} more like it in the last {self.interval_s:g} s)"
+                level = logging.WARNING
+                kwargs.pop("exc_info", None)  # a socket error needs no traceback
+        super().log(level, msg, *args, **kwargs)
+
+
+#: At most one WARNING per message of the MQTT client's own log in this many seconds.
+CLIENT_LOG_INTERVAL_S = 60.0
+
+#: Acknowledgements are written to the spool in batches of up to this many (one commit each);
+#: a smaller batch is written whenever nothing is in flight, and when a session ends.
+ACK_BATCH = 256
+
+#: Spool items read ahead per page (a backlog is read in pages this long; see ``_pump``).
+PAGE = 1024
+
+#: This many items read ahead and not yet sent make a *backlog* (a broker coming back after an
+#: outage): in it, a retained ``state`` followed by a later ``state`` of the same channel is
+#: not sent (see the module docstring, "Catching up").
+BACKLOG = 256
 
 
 class Publisher:
@@ -254,7 +322,8 @@ class Publisher:
 
     ``run(stop)`` connects, reconnects with exponential backoff (``min_backoff_s`` doubling up
     to ``max_backoff_s``, so a backlog starts draining within about ``max_backoff_s`` of the
-    broker coming back) and publishes until ``stop`` is set. ``notify()`` wakes it after new
+    broker coming back: an attempt at a broker that is down is refused at once and costs a
+    few milliseconds, so trying twice a second is cheap) and publishes until ``stop`` is set. ``notify()`` wakes it after new
     items were put into the spool. ``shutdown(timeout_s)`` drains what the broker accepts
     within the timeout, publishes the retained ``offline`` status and disconnects cleanly.
     """
@@ -265,11 +334,11 @@ class Publisher:
         prefix: str,
         spool: Spool,
         *,
-        window: int = 64,
+        window: int = 256,
         connect_timeout_s: float = 5.0,
         publish_timeout_s: float | None = None,
         min_backoff_s: float = 0.1,
-        max_backoff_s: float = 2.0,
+        max_backoff_s: float = 0.5,
     ) -> None:
         if window < 1:
             raise ValueError("window must be at least 1")
@@ -296,6 +365,7 @@ class Publisher:
         self._run_task: asyncio.Task[Any] | None = None
         self._run_done = asyncio.Event()
         self._quiet_failures = False  # log repeated connect failures at DEBUG only
+        self._client_log = _QuietLog(logging.getLogger(__name__ + ".client"), CLIENT_LOG_INTERVAL_S)
 
     # -- public API ---------------------------------------------------------------------------
 
@@ -439,16 +509,32 @@ class Publisher:
             username=cfg.username,
             password=password,
             identifier=self.client_id,
-            logger=logging.getLogger(__name__ + ".client"),
+            logger=self._client_log,  # type: ignore[arg-type]
             will=aiomqtt.Will(self.status_topic, STATUS_OFFLINE, qos=STATUS_QOS, retain=True),
             clean_session=True,
             timeout=self.connect_timeout_s,
             keepalive=cfg.keepalive_s,
-            max_inflight_messages=self.window,
+            # 0: no limit in paho; the window is kept here (paho rescans every message it
+            # holds at each acknowledgement while under its own limit: O(window) per PUBACK)
+            max_inflight_messages=0,
             tls_context=tls,
         )
         # aiomqtt warns above this many pending calls; a full window is normal here.
         client.pending_calls_threshold = self.window + 2
+        paho = client._client
+        on_disconnect = paho.on_disconnect
+
+        def closed_before_connack(c: Any, userdata: Any, flags: Any, rc: Any, props: Any = None) -> None:
+            # An endpoint that accepts the TCP connection and closes it before answering
+            # CONNECT: aiomqtt ignores a disconnection before CONNACK and would wait out its
+            # whole timeout; fail the attempt now instead.
+            on_disconnect(c, userdata, flags, rc, props)
+            if not client._connected.done():
+                client._connected.set_exception(
+                    aiomqtt.MqttError("the connection was closed before the broker answered CONNECT")
+                )
+
+        paho.on_disconnect = closed_before_connack
         return client
 
     async def _session(self, stop: asyncio.Event) -> None:
@@ -484,15 +570,9 @@ class Publisher:
                 log.info("MQTT published offline status; disconnecting")
         finally:
             self.counters.connected = False
-            for f in sess.inflight:
-                f.task.cancel()
             if watcher is not None:
                 watcher.cancel()
-            await asyncio.gather(
-                *(f.task for f in sess.inflight),
-                *((watcher,) if watcher is not None else ()),
-                return_exceptions=True,
-            )
+                await asyncio.gather(watcher, return_exceptions=True)
 
     async def _publish_status(self, client: aiomqtt.Client, payload: bytes, timeout: float) -> None:
         await client.publish(
@@ -505,15 +585,6 @@ class Publisher:
         async for _ in client.messages:
             pass
 
-    async def _publish_item(self, client: aiomqtt.Client, item: Any) -> None:
-        await client.publish(
-            item.topic,
-            item.payload,
-            qos=item.qos,
-            retain=item.retain,
-            timeout=self.publish_timeout_s,
-        )
-
     async def _pump(
         self,
         client: aiomqtt.Client,
@@ -522,12 +593,44 @@ class Publisher:
         stop: asyncio.Event,
         loop: asyncio.AbstractEventLoop,
     ) -> None:
-        """Keep up to ``window`` messages in flight; ack the completed prefix; until stopping."""
+        """Keep up to ``window`` messages in flight; ack the completed prefix; until stopping.
+
+        Spool items go to the paho client's ``publish`` directly (not through a coroutine and
+        a task per message): its ``on_publish`` callback, which runs on this loop, marks them
+        done. That is what lets a backlog of tens of thousands drain in about a second.
+        """
+        paho = client._client  # aiomqtt 2.x keeps the paho client here (module docstring)
         inflight = sess.inflight
-        last_sent = 0  # a fresh session re-sends everything not yet acknowledged
+        by_mid: dict[int, _Sent] = {}
+        progress = asyncio.Event()
+        aiomqtt_on_publish = paho.on_publish
+
+        def on_publish(c: Any, userdata: Any, mid: int, reason: Any, props: Any = None) -> None:
+            aiomqtt_on_publish(c, userdata, mid, reason, props)  # the status messages
+            sent = by_mid.pop(mid, None)
+            if sent is not None:
+                sent.done = True
+                progress.set()
+
+        paho.on_publish = on_publish
+        last_read = 0  # a fresh session re-sends everything not yet acknowledged
+        unsent: collections.deque[Any] = collections.deque()  # read from the spool, not yet sent
+        superseded_ids: set[int] = set()
+
+        def _mark_superseded(queue: collections.deque[Any]) -> None:
+            latest: dict[str, int] = {}
+            for it in reversed(queue):
+                if it.kind == "state" and it.retain:
+                    if it.topic in latest:
+                        superseded_ids.add(it.id)
+                    else:
+                        latest[it.topic] = it.id
+
+        to_ack: list[int] = []
         stop_waiter = asyncio.ensure_future(stop.wait())
         closing_waiter = asyncio.ensure_future(self._closing.wait())
         wake_waiter: asyncio.Future[Any] | None = None
+        progress_waiter: asyncio.Future[Any] | None = None
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
         try:
             while True:
@@ -537,54 +640,102 @@ class Publisher:
                     return  # plain stop: no further drain, un-acked items stay spooled
                 if closing and self._remaining(loop) <= 0.0:
                     return
-                if not inflight:
+                if not inflight and not unsent:
                     # Nothing outstanding: all that is in the spool is unsent. Reading from the
                     # start also copes with a spool that reuses ids once it has emptied.
-                    last_sent = 0
+                    last_read = 0
+                    if to_ack:
+                        await self._ack(to_ack)
                 room = self.window - len(inflight)
-                if room > 0 and (maybe_more or self._wake.is_set()):
+                if room > 0 and len(unsent) < room and (maybe_more or self._wake.is_set()):
                     self._wake.clear()
-                    items = await asyncio.to_thread(self.spool.peek, room, last_sent)
-                    maybe_more = len(items) == room  # a full page: there may be more behind it
-                    for it in items:
-                        # Created in id order, so the PUBLISH packets go out in id order.
-                        task = loop.create_task(self._publish_item(client, it))
-                        inflight.append(_InFlight(it, task))
-                        self.counters.published += 1
-                        last_sent = it.id
-                if not inflight and closing:
+                    page = max(PAGE, room)
+                    items = await asyncio.to_thread(self.spool.peek, page, last_read)
+                    maybe_more = len(items) == page  # a full page: there may be more behind it
+                    if items:
+                        last_read = items[-1].id
+                        unsent.extend(items)
+                        if len(unsent) >= BACKLOG:
+                            _mark_superseded(unsent)
+                now = loop.time()
+                while unsent and len(inflight) < self.window:
+                    it = unsent.popleft()
+                    if it.id in superseded_ids:
+                        # a later retained state of the same channel is already queued behind
+                        # it: skipping this one changes nothing a subscriber can see afterwards
+                        superseded_ids.discard(it.id)
+                        inflight.append(_Sent(it, now, done=True))
+                        self.counters.superseded += 1
+                        continue
+                    # In id order, so the PUBLISH packets go out in id order.
+                    info = paho.publish(it.topic, it.payload, it.qos, it.retain)
+                    if info.rc != 0:  # MQTT_ERR_SUCCESS
+                        raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+                    sent = _Sent(it, now)
+                    inflight.append(sent)
+                    if info.is_published():
+                        sent.done = True
+                    else:
+                        by_mid[info.mid] = sent
+                    self.counters.published += 1
+                if not inflight and not unsent and closing:
+                    if to_ack:
+                        await self._ack(to_ack)
                     return  # drained
-                waits: list[asyncio.Future[Any]] = [watcher]
-                if not closing:  # (once closing, both are done and would make this spin)
-                    waits += [stop_waiter, closing_waiter]
-                waits.extend(f.task for f in inflight)
-                if len(inflight) < self.window:
-                    if wake_waiter is None or wake_waiter.done():
-                        wake_waiter = asyncio.ensure_future(self._wake.wait())
-                    waits.append(wake_waiter)
-                timeout = self._remaining(loop) if closing else None
-                await asyncio.wait(waits, timeout=timeout, return_when=asyncio.FIRST_COMPLETED)
+                if not (inflight and inflight[0].done):
+                    progress.clear()
+                    if progress_waiter is None or progress_waiter.done():
+                        progress_waiter = asyncio.ensure_future(progress.wait())
+                    waits: list[asyncio.Future[Any]] = [watcher, progress_waiter]
+                    if not closing:  # (once closing, both are done and would make this spin)
+                        waits += [stop_waiter, closing_waiter]
+                    if len(inflight) < self.window:
+                        if wake_waiter is None or wake_waiter.done():
+                            wake_waiter = asyncio.ensure_future(self._wake.wait())
+                        waits.append(wake_waiter)
+                    timeout = None
+                    if inflight:  # the head's acknowledgement is due by then
+                        timeout = max(0.0, inflight[0].t0 + self.publish_timeout_s - loop.time())
+                    if closing:
+                        left = self._remaining(loop)
+                        timeout = left if timeout is None else min(timeout, left)
+                    await asyncio.wait(waits, timeout=timeout, return_when=asyncio.FIRST_COMPLETED)
                 if watcher.done():
                     watcher.result()  # raises the disconnection error
                     raise aiomqtt.MqttError("disconnected")
-                done_ids: list[int] = []
-                while inflight and inflight[0].task.done():
-                    f = inflight.popleft()
-                    f.task.result()  # a failed publish ends the session; the item is re-sent
-                    done_ids.append(f.item.id)
-                if done_ids:
-                    await asyncio.to_thread(self.spool.ack, done_ids)
-                    self.counters.acked += len(done_ids)
-                else:
-                    # A later message may have failed while the head is still waiting: no
-                    # point waiting out the head's timeout on a connection that is broken.
-                    for f in inflight:
-                        if f.task.done() and not f.task.cancelled() and f.task.exception():
-                            f.task.result()
+                while inflight and inflight[0].done:
+                    to_ack.append(inflight.popleft().item.id)
+                if len(to_ack) >= ACK_BATCH:
+                    await self._ack(to_ack)
+                if inflight and not inflight[0].done and (
+                    loop.time() - inflight[0].t0 >= self.publish_timeout_s
+                ):
+                    raise aiomqtt.MqttError(
+                        f"no acknowledgement from the broker within {self.publish_timeout_s:g} s"
+                    )
         finally:
-            for w in (stop_waiter, closing_waiter, wake_waiter):
+            paho.on_publish = aiomqtt_on_publish
+            while inflight and inflight[0].done:
+                to_ack.append(inflight.popleft().item.id)
+            if to_ack:
+                # The broker has these: record it even though the session is ending, so they
+                # are not sent again (synchronously: this may run during a cancellation).
+                try:
+                    self.spool.ack(to_ack)
+                    self.counters.acked += len(to_ack)
+                except SpoolError as e:
+                    log.warning("MQTT: acknowledgements could not be stored: %s", e)
+                to_ack.clear()
+            for w in (stop_waiter, closing_waiter, wake_waiter, progress_waiter):
                 if w is not None:
                     w.cancel()
+
+    async def _ack(self, ids: list[int]) -> None:
+        """Remove acknowledged items from the spool (in a worker thread); empties ``ids``."""
+        batch = list(ids)
+        ids.clear()
+        await asyncio.to_thread(self.spool.ack, batch)
+        self.counters.acked += len(batch)
 
 
 __all__ = [
