@@ -160,24 +160,34 @@ class Pipeline:
         its per-sample cost, and in a live stream most channels are quiet in most blocks."""
         chans = self.channels
         assert chans is not None
-        info = self._hold_info
-        if info is None or info[0] is not chans:
-            info = self._hold_info = (chans, [
-                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
-            ])
-        if rows.shape[0] == 1:
-            r = rows[0].tolist()
-            lo_v = hi_v = [r[c] for c in self.chan_cols]
-        else:
-            sub = rows[:, self.chan_cols]
-            lo_v = sub.min(axis=0).tolist()
-            hi_v = sub.max(axis=0).tolist()
+        info = self._holdable()
+        lo_v, hi_v = self._column_ranges(rows)
         t_last = float(t[-1])
         out = []
         for ci, ch in enumerate(chans):
             out.append(info[1][ci] and self._quiet(ch, lo_v[ci], hi_v[ci], t_last,
                                                    self._pending_n[ci] + t.size))
         return out
+
+    def _holdable(self) -> tuple:
+        """(channels, per channel: no prefilter and no fault limits), cached per channel list:
+        only such channels can be proven to keep their level from their raw values."""
+        chans = self.channels
+        info = self._hold_info
+        if info is None or info[0] is not chans:
+            info = self._hold_info = (chans, [
+                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
+            ])
+        return info
+
+    def _column_ranges(self, rows: np.ndarray) -> tuple[list[float], list[float]]:
+        """Per channel column, the smallest and largest raw value of ``rows``."""
+        if rows.shape[0] == 1:  # the usual live read at low rates: no numpy reductions
+            r = rows[0].tolist()
+            v = [r[c] for c in self.chan_cols]
+            return v, v
+        sub = rows[:, self.chan_cols]
+        return sub.min(axis=0).tolist(), sub.max(axis=0).tolist()
 
     @staticmethod
     def _quiet(ch: ChannelConditioner, a: float, b: float, t_last: float, n_new: int) -> bool:
@@ -196,20 +206,7 @@ class Pipeline:
         first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
         if first <= n0 + n_new:
             return False  # a noise estimate is due
-        band = ch.band
-        if band.adaptive:
-            half = band.min_width / 2.0
-            low, high = band.center - half, band.center + half
-        else:
-            low, high = band.low, band.high
-        g = ch.gain
-        if g != 1.0 or ch.offset != 0.0:
-            a, b = a * g + ch.offset, b * g + ch.offset
-            if g < 0:
-                a, b = b, a
-        if level == 1:
-            return a >= low  # (NaN: False, not provable)
-        return b <= high
+        return _keeps_side(ch, level, a, b)
 
     def _drain(self) -> None:
         """Condition every channel's deferred samples now (before state is read or handed
@@ -242,40 +239,16 @@ class Pipeline:
         chans = self.channels
         if chans is None or not self.timebase.ready or rows.shape[0] == 0:
             return True
-        info = self._hold_info
-        if info is None or info[0] is not chans:
-            info = self._hold_info = (chans, [
-                ch.cfg.filter.kind == "none" and ch.cfg.fault is None for ch in chans
-            ])
+        info = self._holdable()
         if not all(info[1]):
             return True
-        if rows.shape[0] == 1:  # the usual live read at low rates: no numpy reductions
-            r = rows[0].tolist()
-            lo_v = hi_v = [r[c] for c in self.chan_cols]
-        else:
-            sub = rows[:, self.chan_cols]
-            lo_v = sub.min(axis=0).tolist()
-            hi_v = sub.max(axis=0).tolist()
+        lo_v, hi_v = self._column_ranges(rows)
         for ch, a, b in zip(chans, lo_v, hi_v):
             st = ch.dwell
             level = st.level
             if st.pend_class != -1 or ch.in_fault or not (level == 0 or level == 1):
                 return True
-            band = ch.band
-            if band.adaptive:
-                half = band.min_width / 2.0
-                low, high = band.center - half, band.center + half
-            else:
-                low, high = band.low, band.high
-            g = ch.gain
-            if g != 1.0 or ch.offset != 0.0:
-                a, b = a * g + ch.offset, b * g + ch.offset
-                if g < 0:
-                    a, b = b, a
-            if level == 1:
-                if not a >= low:  # (NaN: not provable)
-                    return True
-            elif not b <= high:
+            if not _keeps_side(ch, level, a, b):
                 return True
         return False
 
@@ -391,3 +364,24 @@ def _stamp(tagged: list[tuple[int, int, int, dict[str, Any]]], t: np.ndarray, ho
         if isinstance(rt, float) and np.isfinite(rt):
             h += rt - float(t[k])
         records.with_utc(rec, h)
+
+
+def _keeps_side(ch: ChannelConditioner, level: int, a: float, b: float) -> bool:
+    """Do raw values in [a, b] keep ``ch`` at ``level``? Scaled by gain/offset, they must stay
+    above the lower threshold at level 1 and below the upper at level 0. For an adaptive band
+    the thresholds can move at a noise update, but never inside ``center ± min_width/2`` (the
+    narrowest band), which is therefore the test. NaN compares False: never provable."""
+    band = ch.band
+    if band.adaptive:
+        half = band.min_width / 2.0
+        low, high = band.center - half, band.center + half
+    else:
+        low, high = band.low, band.high
+    g = ch.gain
+    if g != 1.0 or ch.offset != 0.0:
+        a, b = a * g + ch.offset, b * g + ch.offset
+        if g < 0:
+            a, b = b, a
+    if level == 1:
+        return a >= low
+    return b <= high
