@@ -420,3 +420,20 @@ def test_parquet_capture_with_host_times_carries_utc(tmp_path):
     for e in edges:
         got = datetime.fromisoformat(e["utc"].replace("Z", "+00:00")).timestamp()
         assert got == pytest.approx(e["t"], abs=2e-6)  # host time is the sample time here
+
+
+def test_rotation_never_renames_onto_an_input(tmp_path):
+    # rotation renames ev.jsonl to ev.jsonl.1 ... ev.jsonl.keep and deletes the oldest: a config
+    # (or spool) that happens to carry one of those names must be refused before anything runs
+    from streamcond.errors import InputError
+
+    cfg = tmp_path / "ev.jsonl.2"
+    cfg.write_text("# a config\n")
+    with pytest.raises(InputError, match=r"rotates into .*ev\.jsonl\.2.*which is the config"):
+        EventLog(str(tmp_path / "ev.jsonl"), mode="append", max_bytes=100, keep=3,
+                 inputs=[("config", cfg)])
+    assert cfg.read_text() == "# a config\n" and not (tmp_path / "ev.jsonl").exists()
+    # keep = 1 never reaches .2, and without rotation nothing is renamed at all
+    EventLog(str(tmp_path / "ev.jsonl"), mode="append", max_bytes=100, keep=1,
+             inputs=[("config", cfg)]).close()
+    EventLog(str(tmp_path / "ev.jsonl"), mode="append", inputs=[("config", cfg)]).close()

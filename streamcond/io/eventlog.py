@@ -78,6 +78,20 @@ def check_output(
     return p
 
 
+def _check_rotated_names(p: Path, keep: int, inputs: list[tuple[str, str | Path | None]]) -> None:
+    """Rotation renames the file NAME.1 … NAME.keep and deletes the oldest: none of those names
+    may be one of the inputs (a config or a spool called ``events.jsonl.2`` would be lost at the
+    second rotation)."""
+    for k in range(1, keep + 1):
+        rotated = Path(f"{p}.{k}")
+        for label, inp in inputs:
+            if inp is not None and _same(rotated, Path(inp)):
+                raise InputError(
+                    f"The events file {str(p)!r} rotates into {str(rotated)!r}, which is the "
+                    f"{label}; rotation would write over it (choose another events path)"
+                )
+
+
 class EventLog:
     """Writes records as JSON lines to a file or stdout (``-``), with optional rotation.
 
@@ -113,7 +127,10 @@ class EventLog:
         if target == "-":
             self.fh = sys.stdout
             return
+        inputs = list(inputs)
         p = check_output(target, mode=mode, inputs=inputs)
+        if self.max_bytes is not None or self.max_age_s is not None:
+            _check_rotated_names(p, self.keep, inputs)
         self._created = not p.exists()
         self.path = p
         #: what happened to the path, for the user: a new file, replaced, appended, a device
@@ -201,9 +218,17 @@ class EventLog:
                 pass
 
 
-def from_config(output: Any, *, flush_each: bool = True, mode: Mode = "append") -> EventLog | None:
+def from_config(
+    output: Any,
+    *,
+    flush_each: bool = True,
+    mode: Mode = "append",
+    inputs: Iterable[tuple[str, str | Path | None]] = (),
+) -> EventLog | None:
     """The daemon's events writer for ``[output]`` (``events``, ``rotate``); None without one.
-    The daemon appends: a restart must not lose the records of the run before."""
+    The daemon appends: a restart must not lose the records of the run before. ``inputs`` are
+    the files it must never write over (the config, the spool): the events path and, with
+    rotation, every rotated name are checked against them."""
     if not output.events:
         return None
     rot = getattr(output, "rotate", None)
@@ -214,4 +239,5 @@ def from_config(output: Any, *, flush_each: bool = True, mode: Mode = "append") 
         max_bytes=rot.max_bytes if rot is not None else None,
         max_age_s=rot.max_age_s if rot is not None else None,
         keep=rot.keep if rot is not None else 5,
+        inputs=inputs,
     )
