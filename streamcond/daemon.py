@@ -117,9 +117,14 @@ class Daemon:
         except Exception as e:  # a corrupt or unwritable file: a plain sentence, exit 2
             raise InputError(f"The spool/state file {str(path)!r} cannot be used: {e}") from None
         saved = self.spool.load_state()
-        writer = events_writer(self.cfg.output)
+        writer = events_writer(self.cfg.output, inputs=self._own_files(self.cfg))
         self.emitter = Emitter(self.spool, writer, self._mqtt_target(self.cfg), None)
         self.live = LiveInput(self.cfg, saved)
+
+    def _own_files(self, cfg: Config) -> list[tuple[str, Path]]:
+        """The files the events writer (and its rotation) must never write over."""
+        return [("config", self.config_path), ("spool/state file", store_path(self.cfg)),
+                ("spool/state file", store_path(cfg))]
 
     @staticmethod
     def _mqtt_target(cfg: Config) -> tuple[str, int] | None:
@@ -325,9 +330,18 @@ class Daemon:
                 raise ConfigError("source.kind must stay \"serial\" for a running daemon")
             if new.metrics != self.cfg.metrics:
                 log.warning("a change of [metrics] takes effect at the next restart")
+            # the new events file is opened (and so checked) before anything is switched over
+            writer = events_writer(new.output, inputs=self._own_files(new)) if (
+                (new.output.events, new.output.rotate) != (self.cfg.output.events, self.cfg.output.rotate)
+            ) else None
             same_source = new.source == self.cfg.source
             if same_source:
-                pipeline = self.live.prepare(new)
+                try:
+                    pipeline = self.live.prepare(new)
+                except StreamcondError:
+                    if writer is not None:
+                        writer.abort()
+                    raise
                 self.emitter.put(self.live.reconfigure(new, pipeline))
         except StreamcondError as e:
             self.rejected_reloads += 1
@@ -342,8 +356,8 @@ class Daemon:
             self.emitter.put(self.live.flush())
             self.live = LiveInput(new, self.live.snapshot())
             self._start_source()
-        if (new.output.events, new.output.rotate) != (old.output.events, old.output.rotate):
-            self.emitter.swap_writer(events_writer(new.output))
+        if writer is not None:
+            self.emitter.swap_writer(writer)
         self.emitter.mqtt = self._mqtt_target(new)
         if new.output.mqtt != old.output.mqtt or new.topic_prefix != old.topic_prefix:
             if (new.output.mqtt and old.output.mqtt and new.output.mqtt.spool_path != old.output.mqtt.spool_path) or (
