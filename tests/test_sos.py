@@ -1,0 +1,72 @@
+"""Tests of the numpy-only Butterworth design and the direct section loop (streamcond.core.sos).
+
+The reference is SciPy itself: ``scipy.signal.butter(..., output="sos")``, ``sosfilt_zi`` and
+``sosfilt``. The design must match bit for bit (``np.array_equal``), not approximately, because
+the pipeline's records are pinned by golden files made when the design came from SciPy.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from streamcond.core import sos as S
+
+_RNG = np.random.default_rng(20261202)
+_CASES = [
+    (order, fs, float(frac * fs))
+    for order in range(1, 11)
+    for fs in (1.0, 3.7, 100.0, 1000.0, 44100.0)
+    for frac in [0.001, 0.01, 0.1, 0.25, 0.49, *_RNG.uniform(1e-4, 0.4999, 6)]
+]
+
+
+@pytest.mark.parametrize(("order", "fs", "cutoff"), _CASES)
+def test_design_and_start_state_equal_scipy_bit_for_bit(order: int, fs: float, cutoff: float) -> None:
+    # Reference: scipy.signal.butter / scipy.signal.sosfilt_zi.
+    ours = S.butter_lowpass_sos(order, cutoff, fs)
+    ref = signal.butter(order, cutoff, btype="lowpass", output="sos", fs=fs)
+    assert ours.shape == ref.shape
+    assert np.array_equal(ours, ref)
+    assert np.array_equal(S.sosfilt_zi(ours), signal.sosfilt_zi(ref))
+
+
+def test_design_meets_butterworth_definition() -> None:
+    # Butterworth: |H| = 1/sqrt(2) at the cutoff, 1 at DC (Oppenheim & Schafer 3rd ed. sec. 7.2).
+    sos = S.butter_lowpass_sos(4, 50.0, 1000.0)
+    _, h = signal.sosfreqz(sos, worN=[0.0, 50.0], fs=1000.0)
+    np.testing.assert_allclose(np.abs(h), [1.0, 1.0 / np.sqrt(2.0)], rtol=1e-12)
+
+
+@pytest.mark.parametrize("use_kernel", [True, False])
+def test_sosfilt_equals_scipy_and_leaves_inputs(use_kernel: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: scipy.signal.sosfilt with zi; both paths (direct kernel, fallback) must agree.
+    if not use_kernel:
+        monkeypatch.setattr(S, "_KERNEL", None)
+        monkeypatch.setattr(S, "_KERNEL_TRIED", True)
+    sos = signal.butter(5, 12.0, output="sos", fs=1000.0)
+    x = _RNG.normal(size=5000)
+    zi = signal.sosfilt_zi(sos) * x[0]
+    x0, zi0 = x.copy(), zi.copy()
+    y, zf = S.sosfilt(sos, x, zi)
+    y_ref, zf_ref = signal.sosfilt(sos, x, zi=zi)
+    assert np.array_equal(y, y_ref) and np.array_equal(zf, zf_ref)
+    assert np.array_equal(x, x0) and np.array_equal(zi, zi0)
+
+
+def test_direct_kernel_loads_without_the_signal_package() -> None:
+    # The point of the module: a lowpass filter works without importing scipy.signal.
+    code = (
+        "import sys, numpy as np\n"
+        "from streamcond.core.filters import make_filter\n"
+        "f = make_filter('lowpass', 1000.0, cutoff_hz=20.0, order=3)\n"
+        "f.process(np.arange(100.0))\n"
+        "from streamcond.core import sos\n"
+        "assert sos._KERNEL is not None\n"
+        "assert 'scipy.signal' not in sys.modules, sorted(m for m in sys.modules if 'scipy' in m)\n"
+    )
+    subprocess.run([sys.executable, "-c", code], check=True)
