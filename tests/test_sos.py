@@ -46,8 +46,7 @@ def test_design_meets_butterworth_definition() -> None:
 def test_sosfilt_equals_scipy_and_leaves_inputs(use_kernel: bool, monkeypatch: pytest.MonkeyPatch) -> None:
     # Reference: scipy.signal.sosfilt with zi; both paths (direct kernel, fallback) must agree.
     if not use_kernel:
-        monkeypatch.setattr(S, "_KERNEL", None)
-        monkeypatch.setattr(S, "_KERNEL_TRIED", True)
+        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None})
     sos = signal.butter(5, 12.0, output="sos", fs=1000.0)
     x = _RNG.normal(size=5000)
     zi = signal.sosfilt_zi(sos) * x[0]
@@ -58,6 +57,26 @@ def test_sosfilt_equals_scipy_and_leaves_inputs(use_kernel: bool, monkeypatch: p
     assert np.array_equal(x, x0) and np.array_equal(zi, zi0)
 
 
+@pytest.mark.parametrize("use_kernel", [True, False])
+@pytest.mark.parametrize("tau_fs", [0.3, 5.0, 123.4])
+def test_first_order_lfilter_equals_scipy(use_kernel: bool, tau_fs: float,
+                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: scipy.signal.lfilter_zi and scipy.signal.lfilter with zi (the EMA's recursion).
+    if not use_kernel:
+        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None})
+    pole = float(np.exp(-1.0 / tau_fs))
+    b, a = np.array([-np.expm1(-1.0 / tau_fs)]), np.array([1.0, -pole])
+    zi_ref = signal.lfilter_zi(b, a)
+    assert np.array_equal(S.lfilter_zi(b, a), zi_ref)
+    x = _RNG.normal(size=3000)
+    zi = zi_ref * x[0]
+    zi0 = zi.copy()
+    y, zf = S.lfilter(b, a, x, zi)
+    y_ref, zf_ref = signal.lfilter(b, a, x, zi=zi)
+    assert np.array_equal(y, y_ref) and np.array_equal(zf, zf_ref)
+    assert np.array_equal(zi, zi0)
+
+
 def test_direct_kernel_loads_without_the_signal_package() -> None:
     # The point of the module: a lowpass filter works without importing scipy.signal.
     code = (
@@ -66,7 +85,9 @@ def test_direct_kernel_loads_without_the_signal_package() -> None:
         "f = make_filter('lowpass', 1000.0, cutoff_hz=20.0, order=3)\n"
         "f.process(np.arange(100.0))\n"
         "from streamcond.core import sos\n"
-        "assert sos._KERNEL is not None\n"
+        "g = make_filter('ema', 1000.0, tau_s=0.05)\n"
+        "g.process(np.arange(100.0))\n"
+        "assert sos._KERNELS['_sosfilt'] is not None and sos._KERNELS['_sigtools'] is not None\n"
         "assert 'scipy.signal' not in sys.modules, sorted(m for m in sys.modules if 'scipy' in m)\n"
     )
     subprocess.run([sys.executable, "-c", code], check=True)

@@ -44,19 +44,14 @@ from numpy.typing import ArrayLike, NDArray
 
 from streamcond.core import sos as _sos
 # SciPy is imported on first use, not with this module: the live daemon loads it only when
-# its config has a filter that needs it (a board's memory budget; SciPy is about 20 MiB).
+# its config has a filter that needs it (a board's memory budget; SciPy is about 20 MiB). The
+# IIR filters need only SciPy's compiled loops, loaded without scipy.signal (core/sos.py).
 
 
 def _ndimage():  # type: ignore[no-untyped-def]
     from scipy import ndimage
 
     return ndimage
-
-
-def _signal():  # type: ignore[no-untyped-def]
-    from scipy import signal
-
-    return signal
 
 __all__ = [
     "FILTER_KINDS",
@@ -308,13 +303,14 @@ class EmaFilter(StreamFilter):
         self._zi: FloatArray = np.zeros(1, dtype=np.float64)
 
     def _start(self, x0: float) -> None:
-        self._zi = _signal().lfilter_zi(self.b, self.a) * x0
+        self._zi = _sos.lfilter_zi(self.b, self.a) * x0
 
     def _filter(self, block: FloatArray) -> FloatArray:
-        # len(a) == 2, so SciPy runs its per-sample direct-form-II-transposed
-        # loop: every output is the same arithmetic whatever the block split.
-        out, self._zi = _signal().lfilter(self.b, self.a, block, zi=self._zi)
-        return np.asarray(out, dtype=np.float64)
+        # len(a) == 2, so SciPy's per-sample direct-form-II-transposed loop runs
+        # (loaded without the scipy.signal package, see core/sos.py): every
+        # output is the same arithmetic whatever the block split.
+        out, self._zi = _sos.lfilter(self.b, self.a, block, self._zi)
+        return out
 
     def _params(self) -> dict[str, Any]:
         return {"sample_rate_hz": self.sample_rate_hz, "tau_s": self.tau_s}

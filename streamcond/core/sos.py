@@ -35,7 +35,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["butter_lowpass_sos", "sosfilt", "sosfilt_zi"]
+__all__ = ["butter_lowpass_sos", "lfilter", "lfilter_zi", "sosfilt", "sosfilt_zi"]
 
 FloatArray = NDArray[np.float64]
 
@@ -244,44 +244,52 @@ def _lfilter_zi(b: FloatArray, a: FloatArray) -> FloatArray:
 # --- filtering --------------------------------------------------------------------------------
 
 
-def _load_kernel() -> Callable[..., Any] | None:
-    """SciPy's compiled section loop, loaded from its file without the scipy.signal package.
+def _load_compiled(module: str, attr: str) -> Callable[..., Any] | None:
+    """A function of one of SciPy's compiled ``scipy.signal`` modules, loaded from its file
+    without importing the scipy.signal package (only the top-level ``scipy``, which is light).
 
-    Returns None when the file is not where SciPy keeps it or does not load; the caller then
-    falls back to ``scipy.signal.sosfilt``.
+    Returns None when the file is not where SciPy keeps it or does not load; the callers then
+    fall back to the public ``scipy.signal`` function, which runs the same compiled loop.
     """
+    import sys
+
+    name = f"scipy.signal.{module}"
     try:
-        spec = importlib.util.find_spec("scipy")
-        if spec is None or not spec.submodule_search_locations:
-            return None
-        folder = os.path.join(list(spec.submodule_search_locations)[0], "signal")
-        name = "scipy.signal._sosfilt"
-        for suffix in importlib.machinery.EXTENSION_SUFFIXES:
-            path = os.path.join(folder, "_sosfilt" + suffix)
-            if os.path.isfile(path):
-                loader = importlib.machinery.ExtensionFileLoader(name, path)
-                mod_spec = importlib.util.spec_from_file_location(name, path, loader=loader)
-                if mod_spec is None:
-                    return None
-                module = importlib.util.module_from_spec(mod_spec)
-                loader.exec_module(module)
-                kernel = module._sosfilt
-                return kernel if callable(kernel) else None
+        loaded = sys.modules.get(name)
+        if loaded is None:
+            spec = importlib.util.find_spec("scipy")
+            if spec is None or not spec.submodule_search_locations:
+                return None
+            folder = os.path.join(list(spec.submodule_search_locations)[0], "signal")
+            for suffix in importlib.machinery.EXTENSION_SUFFIXES:
+                path = os.path.join(folder, module + suffix)
+                if os.path.isfile(path):
+                    loader = importlib.machinery.ExtensionFileLoader(name, path)
+                    mod_spec = importlib.util.spec_from_file_location(name, path, loader=loader)
+                    if mod_spec is None:
+                        return None
+                    loaded = importlib.util.module_from_spec(mod_spec)
+                    loader.exec_module(loaded)
+                    # registered, so a later `import scipy.signal` reuses this very module
+                    sys.modules.setdefault(name, loaded)
+                    break
+            else:
+                return None
+        func = getattr(loaded, attr, None)
+        return func if callable(func) else None
     except Exception:  # any surprise in a foreign layout: use the public function instead
         return None
-    return None
 
 
-_KERNEL: Callable[..., Any] | None = None
-_KERNEL_TRIED = False
+_KERNELS: dict[str, Callable[..., Any] | None] = {}
 
 
-def _kernel() -> Callable[..., Any] | None:
-    global _KERNEL, _KERNEL_TRIED
-    if not _KERNEL_TRIED:
-        _KERNEL_TRIED = True
-        _KERNEL = _load_kernel() if os.environ.get("STREAMCOND_SOSFILT") != "scipy" else None
-    return _KERNEL
+def _kernel(module: str = "_sosfilt", attr: str = "_sosfilt") -> Callable[..., Any] | None:
+    """The compiled loop (cached), or None: not found, or STREAMCOND_SOSFILT=scipy (tests)."""
+    if module not in _KERNELS:
+        use = os.environ.get("STREAMCOND_SOSFILT") != "scipy"
+        _KERNELS[module] = _load_compiled(module, attr) if use else None
+    return _KERNELS[module]
 
 
 def sosfilt(sos: FloatArray, x: FloatArray, zi: FloatArray) -> tuple[FloatArray, FloatArray]:
@@ -303,3 +311,35 @@ def sosfilt(sos: FloatArray, x: FloatArray, zi: FloatArray) -> tuple[FloatArray,
     kernel(sos_c, y, z)
     return y.reshape(-1), z.reshape(sos_c.shape[0], 2)
 
+
+
+def lfilter(b: FloatArray, a: FloatArray, x: FloatArray, zi: FloatArray
+            ) -> tuple[FloatArray, FloatArray]:
+    """``scipy.signal.lfilter(b, a, x, zi=zi)`` for a 1-D float64 block and ``len(a) > 1``
+    with ``a[0] == 1`` (SciPy's compiled direct-form-II-transposed loop, called as lfilter
+    calls it for that case; neither input is modified)."""
+    kernel = _kernel("_sigtools", "_linear_filter")
+    if kernel is None or len(a) < 2:
+        from scipy import signal
+
+        y, zf = signal.lfilter(b, a, x, zi=zi)
+        return np.asarray(y, dtype=np.float64), np.asarray(zf, dtype=np.float64)
+    y, zf = kernel(np.asarray(b), np.asarray(a), np.asarray(x), -1, np.asarray(zi))
+    return np.asarray(y, dtype=np.float64), np.asarray(zf, dtype=np.float64)
+
+
+def lfilter_zi(b: FloatArray, a: FloatArray) -> FloatArray:
+    """Steady-state state of lfilter for a unit step (as ``scipy.signal.lfilter_zi``)."""
+    b = np.atleast_1d(np.asarray(b))
+    a = np.atleast_1d(np.asarray(a))
+    while a.shape[0] > 1 and a[0] == 0.0:
+        a = a[1:]
+    n = max(a.shape[0], b.shape[0])
+    if a[0] != 1.0:
+        b = b / a[0]
+        a = a / a[0]
+    if a.shape[0] < n:
+        a = np.concatenate((a, np.zeros(n - a.shape[0], dtype=a.dtype)))
+    elif b.shape[0] < n:
+        b = np.concatenate((b, np.zeros(n - b.shape[0], dtype=b.dtype)))
+    return _lfilter_zi(b, a)
