@@ -12,7 +12,7 @@ import sys
 
 import numpy as np
 import pytest
-from scipy import signal
+from scipy import ndimage, signal
 
 from streamcond.core import sos as S
 
@@ -46,7 +46,7 @@ def test_design_meets_butterworth_definition() -> None:
 def test_sosfilt_equals_scipy_and_leaves_inputs(use_kernel: bool, monkeypatch: pytest.MonkeyPatch) -> None:
     # Reference: scipy.signal.sosfilt with zi; both paths (direct kernel, fallback) must agree.
     if not use_kernel:
-        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None})
+        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None, "_rank_filter_1d": None})
     sos = signal.butter(5, 12.0, output="sos", fs=1000.0)
     x = _RNG.normal(size=5000)
     zi = signal.sosfilt_zi(sos) * x[0]
@@ -63,7 +63,7 @@ def test_first_order_lfilter_equals_scipy(use_kernel: bool, tau_fs: float,
                                           monkeypatch: pytest.MonkeyPatch) -> None:
     # Reference: scipy.signal.lfilter_zi and scipy.signal.lfilter with zi (the EMA's recursion).
     if not use_kernel:
-        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None})
+        monkeypatch.setattr(S, "_KERNELS", {"_sosfilt": None, "_sigtools": None, "_rank_filter_1d": None})
     pole = float(np.exp(-1.0 / tau_fs))
     b, a = np.array([-np.expm1(-1.0 / tau_fs)]), np.array([1.0, -pole])
     zi_ref = signal.lfilter_zi(b, a)
@@ -77,6 +77,20 @@ def test_first_order_lfilter_equals_scipy(use_kernel: bool, tau_fs: float,
     assert np.array_equal(zi, zi0)
 
 
+@pytest.mark.parametrize("use_kernel", [True, False])
+def test_rank_filter_equals_ndimage(use_kernel: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: scipy.ndimage.rank_filter(mode="nearest"), every rank of windows 3..24 and
+    # arrays shorter than, as long as and longer than the window.
+    if not use_kernel:
+        monkeypatch.setattr(S, "_KERNELS", {"_rank_filter_1d": None})
+    for n in range(3, 25):
+        for length in (1, n // 2, n - 1, n, 257):
+            x = _RNG.normal(size=length)
+            for rank in range(1, n - 1):
+                ref = ndimage.rank_filter(x, rank=rank, size=n, mode="nearest")
+                assert np.array_equal(S.rank_filter_nearest(x, rank, n), ref)
+
+
 def test_direct_kernel_loads_without_the_signal_package() -> None:
     # The point of the module: a lowpass filter works without importing scipy.signal.
     code = (
@@ -87,7 +101,10 @@ def test_direct_kernel_loads_without_the_signal_package() -> None:
         "from streamcond.core import sos\n"
         "g = make_filter('ema', 1000.0, tau_s=0.05)\n"
         "g.process(np.arange(100.0))\n"
-        "assert sos._KERNELS['_sosfilt'] is not None and sos._KERNELS['_sigtools'] is not None\n"
-        "assert 'scipy.signal' not in sys.modules, sorted(m for m in sys.modules if 'scipy' in m)\n"
+        "h = make_filter('median', 1000.0, window=6)\n"
+        "h.process(np.arange(100.0))\n"
+        "assert all(sos._KERNELS[k] is not None for k in ('_sosfilt', '_sigtools', '_rank_filter_1d'))\n"
+        "loaded = sorted(m for m in sys.modules if 'scipy' in m)\n"
+        "assert 'scipy.signal' not in sys.modules and 'scipy.ndimage' not in sys.modules, loaded\n"
     )
     subprocess.run([sys.executable, "-c", code], check=True)

@@ -47,12 +47,6 @@ from streamcond.core import sos as _sos
 # its config has a filter that needs it (a board's memory budget; SciPy is about 20 MiB). The
 # IIR filters need only SciPy's compiled loops, loaded without scipy.signal (core/sos.py).
 
-
-def _ndimage():  # type: ignore[no-untyped-def]
-    from scipy import ndimage
-
-    return ndimage
-
 __all__ = [
     "FILTER_KINDS",
     "ButterworthLowpassFilter",
@@ -259,10 +253,12 @@ class MedianFilter(_WindowFilter):
         # ext[i:i+n]; only centres whose window lies wholly inside `ext` are
         # kept, so the boundary mode never affects the result.
         start = n // 2
-        upper = _ndimage().rank_filter(ext, rank=n // 2, size=n, mode="nearest")
+        # scipy.ndimage.rank_filter's compiled 1-D loop, loaded without the scipy.ndimage
+        # package (0.45 s of imports; see core/sos.py), whenever ndimage itself would use it.
+        upper = _sos.rank_filter_nearest(ext, n // 2, n)
         out = upper[start : start + n_out]
         if n % 2 == 0:
-            lower = _ndimage().rank_filter(ext, rank=n // 2 - 1, size=n, mode="nearest")
+            lower = _sos.rank_filter_nearest(ext, n // 2 - 1, n)
             out = (lower[start : start + n_out] + out) / 2.0
         else:
             out = out.copy()

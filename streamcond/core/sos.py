@@ -35,7 +35,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["butter_lowpass_sos", "lfilter", "lfilter_zi", "sosfilt", "sosfilt_zi"]
+__all__ = ["butter_lowpass_sos", "lfilter", "lfilter_zi", "rank_filter_nearest", "sosfilt",
+           "sosfilt_zi"]
 
 FloatArray = NDArray[np.float64]
 
@@ -244,23 +245,23 @@ def _lfilter_zi(b: FloatArray, a: FloatArray) -> FloatArray:
 # --- filtering --------------------------------------------------------------------------------
 
 
-def _load_compiled(module: str, attr: str) -> Callable[..., Any] | None:
-    """A function of one of SciPy's compiled ``scipy.signal`` modules, loaded from its file
-    without importing the scipy.signal package (only the top-level ``scipy``, which is light).
+def _load_compiled(module: str, attr: str, package: str = "signal") -> Callable[..., Any] | None:
+    """A function of one of SciPy's compiled ``scipy.<package>`` modules, loaded from its file
+    without importing that package (only the top-level ``scipy``, which is light).
 
     Returns None when the file is not where SciPy keeps it or does not load; the callers then
     fall back to the public ``scipy.signal`` function, which runs the same compiled loop.
     """
     import sys
 
-    name = f"scipy.signal.{module}"
+    name = f"scipy.{package}.{module}"
     try:
         loaded = sys.modules.get(name)
         if loaded is None:
             spec = importlib.util.find_spec("scipy")
             if spec is None or not spec.submodule_search_locations:
                 return None
-            folder = os.path.join(list(spec.submodule_search_locations)[0], "signal")
+            folder = os.path.join(list(spec.submodule_search_locations)[0], package)
             for suffix in importlib.machinery.EXTENSION_SUFFIXES:
                 path = os.path.join(folder, module + suffix)
                 if os.path.isfile(path):
@@ -284,11 +285,12 @@ def _load_compiled(module: str, attr: str) -> Callable[..., Any] | None:
 _KERNELS: dict[str, Callable[..., Any] | None] = {}
 
 
-def _kernel(module: str = "_sosfilt", attr: str = "_sosfilt") -> Callable[..., Any] | None:
+def _kernel(module: str = "_sosfilt", attr: str = "_sosfilt", package: str = "signal"
+            ) -> Callable[..., Any] | None:
     """The compiled loop (cached), or None: not found, or STREAMCOND_SOSFILT=scipy (tests)."""
     if module not in _KERNELS:
         use = os.environ.get("STREAMCOND_SOSFILT") != "scipy"
-        _KERNELS[module] = _load_compiled(module, attr) if use else None
+        _KERNELS[module] = _load_compiled(module, attr, package) if use else None
     return _KERNELS[module]
 
 
@@ -343,3 +345,18 @@ def lfilter_zi(b: FloatArray, a: FloatArray) -> FloatArray:
     elif b.shape[0] < n:
         b = np.concatenate((b, np.zeros(n - b.shape[0], dtype=b.dtype)))
     return _lfilter_zi(b, a)
+
+
+def rank_filter_nearest(x: FloatArray, rank: int, size: int) -> FloatArray:
+    """``scipy.ndimage.rank_filter(x, rank=rank, size=size, mode="nearest")`` for a 1-D float64
+    array and ``0 < rank < size - 1`` (the case scipy.ndimage hands to its compiled 1-D rank
+    loop, called here the same way: mode code 0 = "nearest", cval 0, origin 0)."""
+    kernel = _kernel("_rank_filter_1d", "rank_filter", "ndimage")
+    xc = np.ascontiguousarray(x, dtype=np.float64)
+    if kernel is None or not 0 < rank < size - 1 or xc.size < (size - 1) // 2:
+        from scipy import ndimage
+
+        return np.asarray(ndimage.rank_filter(xc, rank=rank, size=size, mode="nearest"))
+    out = np.empty_like(xc)
+    kernel(xc, int(rank), int(size), out, 0, np.float64(0.0), 0)
+    return out
