@@ -137,11 +137,11 @@ class Daemon:
         self.publisher = Publisher(self.cfg.output.mqtt, self.cfg.topic_prefix, self.spool)
         self.publisher_stop = asyncio.Event()
         self.publisher_task = asyncio.create_task(self.publisher.run(self.publisher_stop))
-        notify = self.publisher.notify
+        offer = self.publisher.offer
 
-        def wake() -> None:  # from the emitter thread
+        def wake(first_id: int | None, items: list) -> None:  # from the emitter thread
             try:
-                loop.call_soon_threadsafe(notify)
+                loop.call_soon_threadsafe(offer, first_id, items)
             except RuntimeError:  # the loop has closed: nothing to wake
                 pass
 

@@ -50,11 +50,12 @@ class Emitter:
     """Commits :class:`~streamcond.liveinput.Output` batches to the spool in its own thread.
 
     ``writer`` (the events file, or None) and ``mqtt`` (``(prefix, qos)`` or None) and ``wake``
-    (called after each commit that stored messages) may be swapped by a reload at any time.
+    (called after each commit that stored messages, with the id of the first and the messages,
+    as the publisher's ``offer`` takes them) may be swapped by a reload at any time.
     """
 
     def __init__(self, spool: Any, writer: Any, mqtt: tuple[str, int] | None,
-                 wake: Callable[[], None] | None) -> None:
+                 wake: Callable[[int | None, list[Message]], None] | None) -> None:
         self.spool = spool
         self.writer = writer
         self.mqtt = mqtt
@@ -177,7 +178,7 @@ class Emitter:
         if not items and state is None:
             return
         try:
-            self.spool.put_many(items, state)
+            first = self.spool.put_many(items, state)
         except Exception as e:  # a full or failing disk: counted and logged, the stream goes on
             self.errors += 1
             self._errors.log(logging.ERROR, "records could not be stored in the spool: %s", e,
@@ -187,4 +188,4 @@ class Emitter:
         self.messages += len(items)
         wake = self.wake
         if items and wake is not None:
-            wake()
+            wake(first, items)

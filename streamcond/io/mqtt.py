@@ -97,7 +97,7 @@ import aiomqtt
 from ..config import Mqtt
 from .. import records
 from ..records import to_json
-from .spool import Spool, SpoolError
+from .spool import Spool, SpoolError, SpoolItem
 
 log = logging.getLogger(__name__)
 
@@ -311,6 +311,14 @@ ACK_BATCH = 256
 #: Spool items read ahead per page (a backlog is read in pages this long; see ``_pump``).
 PAGE = 1024
 
+#: Acknowledgements left for the spool's next commit (``Spool.ack_soon``) are committed on
+#: their own after this long without one (a quiet stream), and at once beyond ACK_BATCH.
+ACK_FLUSH_S = 1.0
+
+#: Items handed over by :meth:`Publisher.offer` and not yet taken are kept up to this many;
+#: beyond, they are forgotten and read from the spool instead (a slow broker).
+FED_MAX = 4096
+
 #: This many items read ahead and not yet sent make a *backlog* (a broker coming back after an
 #: outage): in it, a retained ``state`` followed by a later ``state`` of the same channel is
 #: not sent (see the module docstring, "Catching up").
@@ -360,6 +368,10 @@ class Publisher:
         self.status_topic = f"{self.prefix}/status"
         self.counters = PublisherCounters()
         self._wake = asyncio.Event()
+        # Items just committed, handed over by offer(): (first id, items), in commit order.
+        self._fed: collections.deque[tuple[int, list[Message]]] = collections.deque()
+        self._fed_n = 0
+        self._unread = False  # the spool may hold items neither read nor handed over
         self._closing = asyncio.Event()  # shutdown() asked for the final drain
         self._deadline: float | None = None
         self._run_task: asyncio.Task[Any] | None = None
@@ -371,7 +383,50 @@ class Publisher:
 
     def notify(self) -> None:
         """New items are in the spool (call after each ``put_many``); cheap, never blocks."""
+        self._unread = True
         self._wake.set()
+
+    def offer(self, first_id: int | None, items: list[Message]) -> None:
+        """Items just committed to the spool (``(topic, payload, qos, retain, kind)`` as given
+        to ``put_many``, ids from ``first_id`` on, as it returned), handed over so that a publisher that has read everything before them
+        sends them without reading them back. Only a shortcut: whenever they do not follow on
+        from what was read (a gap, a backlog, a new session), the spool is read instead."""
+        if first_id is None or not items:
+            self.notify()
+            return
+        if self._fed_n + len(items) > FED_MAX:
+            self._fed.clear()
+            self._fed_n = 0
+            self._unread = True
+        else:
+            self._fed.append((first_id, items))
+            self._fed_n += len(items)
+        self._wake.set()
+
+    def _take_fed(self, last_read: int, unsent: collections.deque[Any]) -> int:
+        """Move the offered items that follow on from ``last_read`` into ``unsent``; the new
+        last id read. A gap (an item committed but not offered) makes the spool be read."""
+        fed = self._fed
+        while fed:
+            first, items = fed.popleft()
+            self._fed_n -= len(items)
+            last = first + len(items) - 1
+            if last <= last_read:
+                continue  # already read from the spool
+            if first > last_read + 1:
+                self._unread = True  # something between: read it from the spool
+                fed.clear()
+                self._fed_n = 0
+                break
+            for k in range(last_read + 1 - first, len(items)):
+                topic, payload, qos, retain, kind = items[k]
+                unsent.append(SpoolItem(first + k, topic, payload, qos, retain, kind))
+            last_read = last
+        return last_read
+
+    def _drop_fed(self) -> None:
+        self._fed.clear()
+        self._fed_n = 0
 
     @property
     def published(self) -> int:
@@ -614,6 +669,8 @@ class Publisher:
 
         paho.on_publish = on_publish
         last_read = 0  # a fresh session re-sends everything not yet acknowledged
+        self._drop_fed()
+        self._unread = True
         unsent: collections.deque[Any] = collections.deque()  # read from the spool, not yet sent
         superseded_ids: set[int] = set()
 
@@ -632,6 +689,7 @@ class Publisher:
         wake_waiter: asyncio.Future[Any] | None = None
         progress_waiter: asyncio.Future[Any] | None = None
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
+        ack_due: float | None = None  # when acknowledgements left with the spool must go
         try:
             while True:
                 _raise_if_cancelled()
@@ -640,23 +698,44 @@ class Publisher:
                     return  # plain stop: no further drain, un-acked items stay spooled
                 if closing and self._remaining(loop) <= 0.0:
                     return
-                if not inflight and not unsent:
-                    # Nothing outstanding: all that is in the spool is unsent. Reading from the
-                    # start also copes with a spool that reuses ids once it has emptied.
-                    last_read = 0
-                    if to_ack:
+                if not inflight and not unsent and to_ack:
+                    # Nothing outstanding: the acknowledgements go with the spool's next commit
+                    # (no transaction, no thread hop of their own), or after ACK_FLUSH_S.
+                    if self.spool.ack_soon(to_ack):
+                        self.counters.acked += len(to_ack)
+                        to_ack.clear()
+                        if ack_due is None:
+                            ack_due = loop.time() + ACK_FLUSH_S
+                        if self.spool.acks_deferred >= ACK_BATCH:
+                            ack_due = loop.time()
+                    else:
                         await self._ack(to_ack)
+                if ack_due is not None and (loop.time() >= ack_due or closing):
+                    ack_due = None
+                    if self.spool.acks_deferred:
+                        await asyncio.to_thread(self.spool.flush_acks)
                 room = self.window - len(inflight)
-                if room > 0 and len(unsent) < room and (maybe_more or self._wake.is_set()):
+                if room > 0 and len(unsent) < room:
                     self._wake.clear()
-                    page = max(PAGE, room)
-                    items = await asyncio.to_thread(self.spool.peek, page, last_read)
-                    maybe_more = len(items) == page  # a full page: there may be more behind it
-                    if items:
-                        last_read = items[-1].id
-                        unsent.extend(items)
-                        if len(unsent) >= BACKLOG:
-                            _mark_superseded(unsent)
+                    if maybe_more or self._unread:
+                        self._drop_fed()  # newer than what is unread: read them in turn
+                    else:
+                        # Caught up: what was just committed follows on from what was read.
+                        last_read = self._take_fed(last_read, unsent)
+                    if maybe_more or self._unread:
+                        self._unread = False
+                        if not inflight and not unsent:
+                            # Nothing outstanding: all that is in the spool is unsent. Reading
+                            # from the start also copes with a spool that reuses ids.
+                            last_read = 0
+                        page = max(PAGE, room)
+                        items = await asyncio.to_thread(self.spool.peek, page, last_read)
+                        maybe_more = len(items) == page  # a full page: there may be more
+                        if items:
+                            last_read = items[-1].id
+                            unsent.extend(items)
+                            if len(unsent) >= BACKLOG:
+                                _mark_superseded(unsent)
                 now = loop.time()
                 while unsent and len(inflight) < self.window:
                     it = unsent.popleft()
@@ -696,6 +775,9 @@ class Publisher:
                     timeout = None
                     if inflight:  # the head's acknowledgement is due by then
                         timeout = max(0.0, inflight[0].t0 + self.publish_timeout_s - loop.time())
+                    if ack_due is not None:
+                        left = max(0.0, ack_due - loop.time())
+                        timeout = left if timeout is None else min(timeout, left)
                     if closing:
                         left = self._remaining(loop)
                         timeout = left if timeout is None else min(timeout, left)

@@ -126,13 +126,20 @@ def proc_cpu_s(pid: int, task: str = "") -> float:
     return (int(fields[11]) + int(fields[12])) / ticks  # utime + stime
 
 
-def thread_cpu(pid: int) -> dict[str, tuple[str, float]]:
-    """CPU seconds so far of each thread: {tid: (name, seconds)}."""
+def thread_cpu(pid: int) -> dict[str, tuple[str, float, int]]:
+    """CPU seconds and wake-ups so far of each thread: {tid: (name, seconds, wake-ups)}.
+
+    Wake-ups: the thread's voluntary context switches (``/proc/<pid>/task/<tid>/status``),
+    one per time it blocked (a read, a wait with or without timeout) and was woken again."""
     out = {}
     for d in Path(f"/proc/{pid}/task").iterdir():
         try:
             name = (d / "comm").read_text().strip()
-            out[d.name] = (name, proc_cpu_s(pid, d.name))
+            wakes = 0
+            for line in (d / "status").read_text().splitlines():
+                if line.startswith("voluntary_ctxt_switches:"):
+                    wakes = int(line.split()[1])
+            out[d.name] = (name, proc_cpu_s(pid, d.name), wakes)
         except OSError:  # the thread ended meanwhile
             pass
     return out
@@ -249,9 +256,11 @@ def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: 
     q = lambda p: lat[min(len(lat) - 1, int(p * len(lat)))] * 1000 if lat else float("nan")  # noqa: E731
     wall = wall1 - wall0
     threads = {}
-    for tid, (nm, s1) in th1.items():
-        s0 = th0.get(tid, (nm, 0.0))[1]
+    wakeups = {}
+    for tid, (nm, s1, w1) in th1.items():
+        _, s0, w0 = th0.get(tid, (nm, 0.0, 0))
         threads[f"{nm}[{tid}]"] = (s1 - s0) / wall
+        wakeups[f"{nm}[{tid}]"] = (w1 - w0) / wall
     return {
         "side": side,
         "rate_hz": rate_hz,
@@ -264,6 +273,8 @@ def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: 
         "tail_latency_ms": max(late_tail) * 1000 if late_tail else float("nan"),
         "cpu_share_of_one_core": (cpu1 - cpu0) / wall,
         "threads_share_of_one_core": dict(sorted(threads.items(), key=lambda kv: -kv[1])),
+        "threads_wakeups_per_s": dict(sorted(wakeups.items(), key=lambda kv: -kv[1])),
+        "wakeups_per_s": sum(wakeups.values()),
         "peak_rss_mib": hwm,
         "writer_behind_s": w.behind,
     }
@@ -346,7 +357,10 @@ def main() -> int:
                             print(f"  {side:6s} {rate:6.0f}/s: CPU {r['cpu_share_of_one_core'] * 100:5.1f} %  "
                                   f"p50 {r['latency_p50_ms']:5.1f} ms  p99 {r['latency_p99_ms']:5.1f} ms  "
                                   f"RSS {r['peak_rss_mib']:5.1f} MiB  missing {r['edges_missing']}  "
-                                  f"threads: {top}", flush=True)
+                                  f"wake-ups {r['wakeups_per_s']:6.0f}/s  threads: {top}", flush=True)
+                            if os.environ.get("STREAMCOND_BENCH_WAKEUPS"):
+                                print("      wake-ups/s: " + ", ".join(
+                                    f"{k} {v:.0f}" for k, v in r["threads_wakeups_per_s"].items()), flush=True)
             steps = []
             if args.ramp:
                 rate = 2000.0
