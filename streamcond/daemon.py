@@ -56,6 +56,10 @@ RELOAD_FLUSH_S = 1.0
 #: The reader hands a read over at most this often while bytes keep coming (bounds the
 #: per-read overhead at a kilohertz of lines; a line is never held longer than this).
 COALESCE_S = 0.004
+#: The serial read's timeout: how often a quiet reader turns to update its heartbeat (the
+#: watchdog's sign of life, far inside health.STALL_S). A stop does not wait for it (the read
+#: is cancelled), data does not wait for it (the read returns with the first byte).
+READ_TIMEOUT_S = 1.0
 #: Period of the housekeeping tick (held rows, health, watchdog, the disconnected log).
 TICK_S = 1.0
 
@@ -170,7 +174,8 @@ class Daemon:
             elif type(ev).__name__ == "Back":
                 self.notifier.status(f"reading {port}")
 
-        self.source = SerialSource(self.cfg.source, coalesce_s=COALESCE_S, sink=sink)
+        self.source = SerialSource(self.cfg.source, coalesce_s=COALESCE_S, read_timeout_s=READ_TIMEOUT_S,
+                                   sink=sink)
         self.source_task = asyncio.create_task(self._read_source(self.source))
 
     async def _read_source(self, source: Any) -> None:

@@ -96,6 +96,7 @@ import aiomqtt
 
 from ..config import Mqtt
 from .. import records
+from ..ratelimit import RateLimitedLog
 from ..records import to_json
 from .spool import Spool, SpoolError, SpoolItem
 
@@ -267,7 +268,7 @@ class _Session:
 
 
 class _QuietLog(logging.LoggerAdapter):
-    """The MQTT client's own logger, rate-limited.
+    """The MQTT client's own logger, rate-limited (:class:`streamcond.ratelimit.RateLimitedLog`).
 
     paho logs every socket error ("failed to receive on socket ...") at ERROR, again at every
     reconnect attempt while a broker is away; the publisher reports the same failures itself
@@ -279,25 +280,18 @@ class _QuietLog(logging.LoggerAdapter):
     def __init__(self, logger: logging.Logger, interval_s: float, clock: Any = time.monotonic) -> None:
         super().__init__(logger, {})
         self.interval_s = interval_s
-        self._clock = clock
-        self._last: dict[str, float] = {}
-        self._held: dict[str, int] = {}
+        self._limit = RateLimitedLog(logger, interval_s, clock=clock)
 
     def log(self, level: int, msg: Any, *args: Any, **kwargs: Any) -> None:
         if level >= logging.WARNING:
-            key = str(msg)
-            now = self._clock()
-            last = self._last.get(key)
-            if last is not None and now - last < self.interval_s:
-                self._held[key] = self._held.get(key, 0) + 1
-                level = logging.DEBUG
-            else:
-                self._last[key] = now
-                held = self._held.pop(key, 0)
-                if held:
-                    msg = f"{msg} ({held} more like it in the last {self.interval_s:g} s)"
+            n = self._limit.due(1, key=str(msg))
+            if n:
+                if n > 1:
+                    msg = f"{msg} ({n - 1} more like it in the last {self.interval_s:g} s)"
                 level = logging.WARNING
                 kwargs.pop("exc_info", None)  # a socket error needs no traceback
+            else:
+                level = logging.DEBUG
         super().log(level, msg, *args, **kwargs)
 
 

@@ -90,6 +90,7 @@ from typing import Any, Literal
 
 from .. import records
 from ..errors import StreamcondError
+from ..ratelimit import RateLimitedLog
 
 log = logging.getLogger(__name__)
 
@@ -243,8 +244,8 @@ class Spool:
         self.memory_max_records = max(1, min(int(memory_max_records), max_records))
         self._clock = clock
         self._lock = threading.Lock()
-        self._last_warned: dict[str, float] = {}
-        self._unreported: dict[str, int] = {}
+        # one overflow warning per record kind per WARN_INTERVAL_S, with the count since
+        self._drop_log = RateLimitedLog(log, WARN_INTERVAL_S, clock=clock)
         self._conn: sqlite3.Connection | None = None
         # held in memory while the disk cannot be written (module docstring)
         self._mem: deque[_Row] = deque()
@@ -256,7 +257,7 @@ class Spool:
         self._deferred_lock = threading.Lock()
         self._trouble: str | None = None  # what is wrong with the disk, in words
         self._retry_at = 0.0
-        self._trouble_warned = 0.0
+        self._trouble_log = RateLimitedLog(log, WARN_INTERVAL_S, clock=clock)
         self.lost_to_disk = 0
         """Records dropped because the disk could not take them (included in ``dropped``)."""
         self.disk_errors = 0
@@ -555,16 +556,16 @@ class Spool:
             words = self._trouble_words(e)
             if self._trouble is None:
                 self._trouble = words
-                self._trouble_warned = now
+                self._trouble_log.start()  # "still ..." a full interval from now
                 log.warning(
                     "spool %s cannot be written (%s): records are kept in memory (at most %d) "
                     "and sent live while the broker is reachable; trying the disk again every "
                     "%g s", self.path, words, self.memory_max_records, DISK_RETRY_S,
                 )
-            elif now - self._trouble_warned >= WARN_INTERVAL_S:
+            else:
                 self._trouble = words
-                self._trouble_warned = now
-                log.warning(
+                self._trouble_log.log(
+                    logging.WARNING,
                     "spool %s still cannot be written (%s): %d record(s) in memory, %d lost to "
                     "the disk so far", self.path, words, len(self._mem) + len(rows),
                     self.lost_to_disk,
@@ -667,13 +668,10 @@ class Spool:
         """Log committed drops, at most once per :data:`WARN_INTERVAL_S` per kind."""
         if not drops:
             return
-        now = self._clock()
         for kind, n in drops.items():
-            self._unreported[kind] = self._unreported.get(kind, 0) + n
-            last = self._last_warned.get(kind)
-            if last is None or now - last >= WARN_INTERVAL_S:
-                self._last_warned[kind] = now
-                self._warn(kind, self._unreported.pop(kind))
+            due = self._drop_log.due(n, key=kind)
+            if due:
+                self._warn(kind, due)
 
     def _warn(self, kind: str, n: int) -> None:
         bound = self.max_records if self._trouble is None else self.memory_max_records
@@ -903,9 +901,8 @@ class Spool:
                             "spool %s: %d record(s) held in memory could not be stored (%s) "
                             "and are lost", self.path, len(self._mem), self._trouble_words(e),
                         )
-            for kind, n in sorted(self._unreported.items()):
+            for kind, n in sorted(self._drop_log.drain().items()):
                 self._warn(kind, n)
-            self._unreported.clear()
             try:
                 conn.close()  # checkpoints the log into the database and removes it
             except sqlite3.Error as e:
