@@ -366,6 +366,7 @@ class Publisher:
         self._fed: collections.deque[tuple[int, list[Message]]] = collections.deque()
         self._fed_n = 0
         self._unread = False  # the spool may hold items neither read nor handed over
+        self._kick_fut: asyncio.Future[None] | None = None  # what the pump waits on (_kick)
         self._closing = asyncio.Event()  # shutdown() asked for the final drain
         self._deadline: float | None = None
         self._run_task: asyncio.Task[Any] | None = None
@@ -379,6 +380,13 @@ class Publisher:
         """New items are in the spool (call after each ``put_many``); cheap, never blocks."""
         self._unread = True
         self._wake.set()
+        self._kick()
+
+    def _kick(self, *_: Any) -> None:
+        """Wake the pump: something it waits for happened (it looks again at everything)."""
+        f = self._kick_fut
+        if f is not None and not f.done():
+            f.set_result(None)
 
     def offer(self, first_id: int | None, items: list[Message]) -> None:
         """Items just committed to the spool (``(topic, payload, qos, retain, kind)`` as given
@@ -396,6 +404,7 @@ class Publisher:
             self._fed.append((first_id, items))
             self._fed_n += len(items)
         self._wake.set()
+        self._kick()
 
     def _take_fed(self, last_read: int, unsent: collections.deque[Any]) -> int:
         """Move the offered items that follow on from ``last_read`` into ``unsent``; the new
@@ -651,7 +660,7 @@ class Publisher:
         paho = client._client  # aiomqtt 2.x keeps the paho client here (module docstring)
         inflight = sess.inflight
         by_mid: dict[int, _Sent] = {}
-        progress = asyncio.Event()
+        kick = self._kick
         aiomqtt_on_publish = paho.on_publish
 
         def on_publish(c: Any, userdata: Any, mid: int, reason: Any, props: Any = None) -> None:
@@ -659,7 +668,8 @@ class Publisher:
             sent = by_mid.pop(mid, None)
             if sent is not None:
                 sent.done = True
-                progress.set()
+                if inflight and inflight[0] is sent:
+                    kick()  # the head is done: there is something to acknowledge
 
         paho.on_publish = on_publish
         last_read = 0  # a fresh session re-sends everything not yet acknowledged
@@ -678,10 +688,13 @@ class Publisher:
                         latest[it.topic] = it.id
 
         to_ack: list[int] = []
+        # One future to wait on, completed by whichever happens first (_kick): the head's
+        # acknowledgement, new items, a stop, the shutdown, the disconnection; a timer for the
+        # head's deadline. Cheaper per turn than asyncio.wait() over a future for each.
         stop_waiter = asyncio.ensure_future(stop.wait())
         closing_waiter = asyncio.ensure_future(self._closing.wait())
-        wake_waiter: asyncio.Future[Any] | None = None
-        progress_waiter: asyncio.Future[Any] | None = None
+        for w in (stop_waiter, closing_waiter, watcher):
+            w.add_done_callback(kick)
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
         ack_due: float | None = None  # when acknowledgements left with the spool must go
         try:
@@ -755,17 +768,10 @@ class Publisher:
                     if to_ack:
                         await self._ack(to_ack)
                     return  # drained
-                if not (inflight and inflight[0].done):
-                    progress.clear()
-                    if progress_waiter is None or progress_waiter.done():
-                        progress_waiter = asyncio.ensure_future(progress.wait())
-                    waits: list[asyncio.Future[Any]] = [watcher, progress_waiter]
-                    if not closing:  # (once closing, both are done and would make this spin)
-                        waits += [stop_waiter, closing_waiter]
-                    if len(inflight) < self.window:
-                        if wake_waiter is None or wake_waiter.done():
-                            wake_waiter = asyncio.ensure_future(self._wake.wait())
-                        waits.append(wake_waiter)
+                woken = self._wake.is_set() and len(inflight) < self.window
+                if not (inflight and inflight[0].done) and not woken and not watcher.done() and (
+                    closing or not (stop.is_set() or self._closing.is_set())
+                ):
                     timeout = None
                     if inflight:  # the head's acknowledgement is due by then
                         timeout = max(0.0, inflight[0].t0 + self.publish_timeout_s - loop.time())
@@ -775,7 +781,14 @@ class Publisher:
                     if closing:
                         left = self._remaining(loop)
                         timeout = left if timeout is None else min(timeout, left)
-                    await asyncio.wait(waits, timeout=timeout, return_when=asyncio.FIRST_COMPLETED)
+                    fut = self._kick_fut = loop.create_future()
+                    timer = loop.call_later(timeout, kick) if timeout is not None else None
+                    try:
+                        await fut
+                    finally:
+                        self._kick_fut = None
+                        if timer is not None:
+                            timer.cancel()
                 if watcher.done():
                     watcher.result()  # raises the disconnection error
                     raise aiomqtt.MqttError("disconnected")
@@ -802,9 +815,10 @@ class Publisher:
                 except SpoolError as e:
                     log.warning("MQTT: acknowledgements could not be stored: %s", e)
                 to_ack.clear()
-            for w in (stop_waiter, closing_waiter, wake_waiter, progress_waiter):
-                if w is not None:
-                    w.cancel()
+            for w in (stop_waiter, closing_waiter, watcher):
+                w.remove_done_callback(kick)
+            for w in (stop_waiter, closing_waiter):
+                w.cancel()
 
     async def _ack(self, ids: list[int]) -> None:
         """Remove acknowledged items from the spool (in a worker thread); empties ``ids``."""
