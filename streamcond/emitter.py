@@ -2,8 +2,9 @@
 
 The serial reader's thread conditions the samples (:mod:`streamcond.liveinput`) and hands each
 non-empty result here through a queue; this thread writes the JSON-lines file, maps records to
-MQTT messages and commits them with the channels' state in one spool transaction, then wakes the
-publisher on the event loop. A block that produced nothing costs nothing here — no hand-over, no
+MQTT messages and commits them with the channels' state in one spool transaction, then hands
+them, with the ids the spool gave them, to the publisher on the event loop (which sends them
+without reading them back). A block that produced nothing costs nothing here — no hand-over, no
 commit — and a slow commit (an fsync on an SD card) delays neither the reading of the port nor
 the event loop.
 

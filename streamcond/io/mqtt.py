@@ -65,7 +65,16 @@ acknowledged within ``publish_timeout_s`` ends the session. aiomqtt ignores a di
 before CONNACK and would wait out its whole connect timeout on an endpoint that accepts the
 connection and closes it; the publisher wraps ``on_disconnect`` to fail that attempt at once.
 
-The event loop: spool calls (``peek``, ``ack``) run in a worker thread
+Live, caught up (the usual case): the daemon's emitter hands each batch it has just committed
+to :meth:`Publisher.offer` with the ids the spool gave it, and a publisher that has read
+everything before them sends them as they are — no read back from the spool; anything that
+does not follow on (a gap, a backlog still being read, a new session) sends it back to reading
+the spool, so the shortcut never skips or reorders. The acknowledgements of a live stream go
+with the spool's next commit (``Spool.ack_soon``: no transaction and no thread hop of their
+own; on their own after :data:`ACK_FLUSH_S` when nothing else is committed): a SIGKILL before
+that can only bring acknowledged records back, to be sent again — at least once, never a loss.
+
+The event loop: the other spool calls (``peek``, ``ack``) run in a worker thread
 (:func:`asyncio.to_thread`). They are short — a range read of at most :data:`PAGE` rows, one
 DELETE per batch of acknowledgements, batched so a burst of PUBACKs costs one commit — but the
 spool serialises callers with a lock, and the daemon's ``put_many`` holds it through an fsync
