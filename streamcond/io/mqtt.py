@@ -705,7 +705,7 @@ class Publisher:
         for w in (stop_waiter, closing_waiter, watcher):
             w.add_done_callback(kick)
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
-        ack_due: float | None = None  # when acknowledgements left with the spool must go
+        flushing: asyncio.Future[Any] | None = None  # acknowledgements being committed alone
         try:
             while True:
                 _raise_if_cancelled()
@@ -720,16 +720,17 @@ class Publisher:
                     if self.spool.ack_soon(to_ack):
                         self.counters.acked += len(to_ack)
                         to_ack.clear()
-                        if ack_due is None:
-                            ack_due = loop.time() + ACK_FLUSH_S
-                        if self.spool.acks_deferred >= ACK_BATCH:
-                            ack_due = loop.time()
                     else:
                         await self._ack(to_ack)
-                if ack_due is not None and (loop.time() >= ack_due or closing):
+                # Acknowledgements no commit has taken for ACK_FLUSH_S (a quiet stream) are
+                # committed alone, beside the pump: sending never waits for that commit.
+                since = self.spool.acks_deferred_since
+                ack_due = None if since is None else since + ACK_FLUSH_S
+                if ack_due is not None and (flushing is None or flushing.done()) and (
+                    time.monotonic() >= ack_due or closing or self.spool.acks_deferred >= ACK_BATCH
+                ):
+                    flushing = asyncio.ensure_future(self._flush_acks())
                     ack_due = None
-                    if self.spool.acks_deferred:
-                        await asyncio.to_thread(self.spool.flush_acks)
                 room = self.window - len(inflight)
                 if room > 0 and len(unsent) < room:
                     self._wake.clear()
@@ -774,8 +775,10 @@ class Publisher:
                         by_mid[info.mid] = sent
                     self.counters.published += 1
                 if not inflight and not unsent and closing:
-                    if to_ack:
-                        await self._ack(to_ack)
+                    if flushing is not None:
+                        await flushing
+                    if to_ack or self.spool.acks_deferred:
+                        await self._ack(to_ack)  # (the spool's ack takes the deferred ones too)
                     return  # drained
                 woken = self._wake.is_set() and len(inflight) < self.window
                 if not (inflight and inflight[0].done) and not woken and not watcher.done() and (
@@ -785,7 +788,7 @@ class Publisher:
                     if inflight:  # the head's acknowledgement is due by then
                         timeout = max(0.0, inflight[0].t0 + self.publish_timeout_s - loop.time())
                     if ack_due is not None:
-                        left = max(0.0, ack_due - loop.time())
+                        left = max(0.0, ack_due - time.monotonic())
                         timeout = left if timeout is None else min(timeout, left)
                     if closing:
                         left = self._remaining(loop)
@@ -828,6 +831,13 @@ class Publisher:
                 w.remove_done_callback(kick)
             for w in (stop_waiter, closing_waiter):
                 w.cancel()
+
+    async def _flush_acks(self) -> None:
+        """Commit the acknowledgements left with the spool (in a worker thread)."""
+        try:
+            await asyncio.to_thread(self.spool.flush_acks)
+        except SpoolError as e:  # e.g. closed meanwhile: they are committed at the next start
+            log.debug("MQTT: acknowledgements not committed yet: %s", e)
 
     async def _ack(self, ids: list[int]) -> None:
         """Remove acknowledged items from the spool (in a worker thread); empties ``ids``."""

@@ -254,6 +254,7 @@ class Spool:
         # acknowledgements left for the next commit (ack_soon); their own small lock, never
         # held through I/O, so the event loop can add to them while a commit is syncing
         self._deferred: set[int] = set()
+        self._deferred_at: float | None = None  # time.monotonic() of the oldest of them
         self._deferred_lock = threading.Lock()
         self._trouble: str | None = None  # what is wrong with the disk, in words
         self._retry_at = 0.0
@@ -793,6 +794,8 @@ class Spool:
         if self._mem or self._trouble is not None:
             return False
         with self._deferred_lock:
+            if not self._deferred:
+                self._deferred_at = time.monotonic()
             self._deferred.update(int(i) for i in ids)
         return True
 
@@ -800,6 +803,12 @@ class Spool:
     def acks_deferred(self) -> int:
         """Acknowledgements :meth:`ack_soon` has left for the next commit."""
         return len(self._deferred)
+
+    @property
+    def acks_deferred_since(self) -> float | None:
+        """``time.monotonic()`` when the oldest acknowledgement still left for the next commit
+        was left (None: none is)."""
+        return self._deferred_at if self._deferred else None
 
     def flush_acks(self) -> None:
         """Commit the acknowledgements :meth:`ack_soon` left (a no-op when there are none)."""
@@ -811,6 +820,7 @@ class Spool:
         :meth:`_write`), or returned."""
         with self._deferred_lock:
             ids, self._deferred = self._deferred, set()
+            self._deferred_at = None
         if into_pending:
             self._ack_pending |= ids
         return ids
