@@ -399,9 +399,10 @@ class Publisher:
 
     def offer(self, first_id: int | None, items: list[Message]) -> None:
         """Items just committed to the spool (``(topic, payload, qos, retain, kind)`` as given
-        to ``put_many``, ids from ``first_id`` on, as it returned), handed over so that a publisher that has read everything before them
-        sends them without reading them back. Only a shortcut: whenever they do not follow on
-        from what was read (a gap, a backlog, a new session), the spool is read instead."""
+        to ``put_many``, ids from ``first_id`` on, as it returned), handed over so that a
+        publisher that has read everything before them sends them without reading them back.
+        Only a shortcut: whenever they do not follow on from what was read (a gap, a backlog,
+        a new session), the spool is read instead. Call it on the event loop."""
         if first_id is None or not items:
             self.notify()
             return
@@ -726,10 +727,13 @@ class Publisher:
                 # committed alone, beside the pump: sending never waits for that commit.
                 since = self.spool.acks_deferred_since
                 ack_due = None if since is None else since + ACK_FLUSH_S
-                if ack_due is not None and (flushing is None or flushing.done()) and (
+                if flushing is not None and not flushing.done():
+                    ack_due = None  # its end wakes the pump (no timer meanwhile: no spinning)
+                elif ack_due is not None and (
                     time.monotonic() >= ack_due or closing or self.spool.acks_deferred >= ACK_BATCH
                 ):
                     flushing = asyncio.ensure_future(self._flush_acks())
+                    flushing.add_done_callback(kick)
                     ack_due = None
                 room = self.window - len(inflight)
                 if room > 0 and len(unsent) < room:
