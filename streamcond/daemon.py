@@ -56,6 +56,10 @@ RELOAD_FLUSH_S = 1.0
 #: The reader hands a read over at most this often while bytes keep coming (bounds the
 #: per-read overhead at a kilohertz of lines; a line is never held longer than this).
 COALESCE_S = 0.004
+#: The serial read's timeout: how often a quiet reader turns to update its heartbeat (the
+#: watchdog's sign of life, far inside health.STALL_S). A stop does not wait for it (the read
+#: is cancelled), data does not wait for it (the read returns with the first byte).
+READ_TIMEOUT_S = 1.0
 #: Period of the housekeeping tick (held rows, health, watchdog, the disconnected log).
 TICK_S = 1.0
 
@@ -142,11 +146,11 @@ class Daemon:
         self.publisher = Publisher(self.cfg.output.mqtt, self.cfg.topic_prefix, self.spool)
         self.publisher_stop = asyncio.Event()
         self.publisher_task = asyncio.create_task(self.publisher.run(self.publisher_stop))
-        notify = self.publisher.notify
+        offer = self.publisher.offer
 
-        def wake() -> None:  # from the emitter thread
+        def wake(first_id: int | None, items: list) -> None:  # from the emitter thread
             try:
-                loop.call_soon_threadsafe(notify)
+                loop.call_soon_threadsafe(offer, first_id, items)
             except RuntimeError:  # the loop has closed: nothing to wake
                 pass
 
@@ -175,7 +179,8 @@ class Daemon:
             elif type(ev).__name__ == "Back":
                 self.notifier.status(f"reading {port}")
 
-        self.source = SerialSource(self.cfg.source, coalesce_s=COALESCE_S, sink=sink)
+        self.source = SerialSource(self.cfg.source, coalesce_s=COALESCE_S, read_timeout_s=READ_TIMEOUT_S,
+                                   sink=sink)
         self.source_task = asyncio.create_task(self._read_source(self.source))
 
     async def _read_source(self, source: Any) -> None:

@@ -2,8 +2,9 @@
 
 The serial reader's thread conditions the samples (:mod:`streamcond.liveinput`) and hands each
 non-empty result here through a queue; this thread writes the JSON-lines file, maps records to
-MQTT messages and commits them with the channels' state in one spool transaction, then wakes the
-publisher on the event loop. A block that produced nothing costs nothing here — no hand-over, no
+MQTT messages and commits them with the channels' state in one spool transaction, then hands
+them, with the ids the spool gave them, to the publisher on the event loop (which sends them
+without reading them back). A block that produced nothing costs nothing here — no hand-over, no
 commit — and a slow commit (an fsync on an SD card) delays neither the reading of the port nor
 the event loop.
 
@@ -50,11 +51,12 @@ class Emitter:
     """Commits :class:`~streamcond.liveinput.Output` batches to the spool in its own thread.
 
     ``writer`` (the events file, or None) and ``mqtt`` (``(prefix, qos)`` or None) and ``wake``
-    (called after each commit that stored messages) may be swapped by a reload at any time.
+    (called after each commit that stored messages, with the id of the first and the messages,
+    as the publisher's ``offer`` takes them) may be swapped by a reload at any time.
     """
 
     def __init__(self, spool: Any, writer: Any, mqtt: tuple[str, int] | None,
-                 wake: Callable[[], None] | None) -> None:
+                 wake: Callable[[int | None, list[Message]], None] | None) -> None:
         self.spool = spool
         self.writer = writer
         self.mqtt = mqtt
@@ -177,7 +179,7 @@ class Emitter:
         if not items and state is None:
             return
         try:
-            self.spool.put_many(items, state)
+            first = self.spool.put_many(items, state)
         except Exception as e:  # a full or failing disk: counted and logged, the stream goes on
             self.errors += 1
             self._errors.log(logging.ERROR, "records could not be stored in the spool: %s", e,
@@ -187,4 +189,4 @@ class Emitter:
         self.messages += len(items)
         wake = self.wake
         if items and wake is not None:
-            wake()
+            wake(first, items)

@@ -37,7 +37,7 @@ from . import records
 HEALTH = records.HEALTH
 #: A part of the pipeline that has not moved for this long is stalled: the watchdog is then no
 #: longer fed, so systemd restarts the service (sd_notify(3), ``WatchdogSec=``). The serial
-#: reader turns at least every read timeout (0.1 s) or reconnect attempt (at most 2 s apart),
+#: reader turns at least every read timeout (1 s in the daemon) or reconnect attempt (at most 2 s apart),
 #: and a spool commit takes milliseconds (tens on an SD card); 5 s is far beyond both.
 STALL_S = 5.0
 

@@ -57,6 +57,14 @@ class RateLimitedLog:
         """Occurrences counted but not reported yet."""
         return self._held.get(key, 0)
 
+    def drain(self) -> dict[Hashable, int]:
+        """Every key's occurrences counted but not reported yet (those with any), forgotten
+        here: for a last report at a close."""
+        out = {k: n for k, n in self._held.items() if n}
+        for k in out:
+            self._held[k] = 0
+        return out
+
     def due(self, count: int = 1, key: Hashable = None) -> int:
         """Count ``count`` occurrences of ``key``; return how many to report now (0: none)."""
         total = self._held.get(key, 0) + max(0, int(count))

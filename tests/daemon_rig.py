@@ -210,8 +210,9 @@ def write_config(path: Path, port: Path, mqtt_port: int | None, spool: Path, **o
 
 class DaemonProcess:
     def __init__(self, config: Path, log: Path, prefix: list[str] | None = None,
-                 env: dict[str, str] | None = None) -> None:
+                 env: dict[str, str] | None = None, root: Path | None = None) -> None:
         self.config = config
+        self.root = root or ROOT  # the checkout whose streamcond runs (benchmarks: another one)
         self.log = log
         # STREAMCOND_TEST_DEBUG=1: the daemon logs at debug level, with times
         self.extra_args = ["-vv"] if os.environ.get("STREAMCOND_TEST_DEBUG") else []
@@ -227,7 +228,7 @@ class DaemonProcess:
         env.update(self.env)
         self.proc = subprocess.Popen(
             [sys.executable, *self.prefix, "-m", "streamcond", *self.extra_args, "run", "-c", str(self.config)],
-            stdout=self._fh, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, cwd=ROOT, env=env,
+            stdout=self._fh, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, cwd=self.root, env=env,
         )
         return self
 

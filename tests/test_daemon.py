@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from broker import broker_kinds, collect, private_broker
+from broker import broker_kinds, collect, private_broker, retained_snapshot
 from daemon_rig import DaemonProcess, Pty, Relay, SquareWave, edges_of, seq_report, write_config
 
 pytestmark = pytest.mark.slow
@@ -85,7 +85,7 @@ def test_edges_survive_a_network_outage(rig):
     col.wait_for(lambda: col.on("test/station/status")[-1].payload == b"offline", 10, "offline")
 
 
-def test_sigkill_and_restart_keep_seq_contiguous(rig):
+def test_sigkill_and_restart_keep_seq_contiguous(rig, broker):
     pty, relay, daemon, col = rig
     wave = SquareWave(pty)
     daemon.start()
@@ -103,6 +103,15 @@ def test_sigkill_and_restart_keep_seq_contiguous(rig):
     assert seqs[:before] == list(range(1, before + 1))
     assert_contiguous(edges, max(seqs))
     assert max(seqs) >= wave.toggles - 1
+    # The retained state a late subscriber gets is the one the last edge left (the edge and
+    # its state are stored in one commit; acknowledgements may ride on later commits, which a
+    # SIGKILL can only turn into re-sends). Reference: the edges as the broker delivered them.
+    last = max(edges, key=lambda e: e["seq"])
+    col.wait_for(lambda: any(json.loads(m.payload).get("seq") == last["seq"]
+                             for m in col.on(f"test/station/{last['channel']}/state")), 10, "last state")
+    got = retained_snapshot(broker.host, broker.port, f"test/station/{last['channel']}/state")
+    states = [json.loads(m.payload) for m in got if m.retain]
+    assert states and states[-1]["seq"] == last["seq"] and states[-1]["level"] == last["level"]
 
 
 def test_device_unplugged_and_back(rig):

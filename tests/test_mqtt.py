@@ -469,6 +469,61 @@ def test_window_keeps_order_with_qos0_and_qos1(mqtt_broker: PrivateBroker, tmp_p
     asyncio.run(scenario())
 
 
+def test_offered_items_go_out_in_order_and_a_gap_is_read_from_the_spool(
+    mqtt_broker: PrivateBroker, tmp_path: Path
+) -> None:
+    """Items handed over after their commit (as the daemon's emitter does) are delivered as
+    the spool holds them, in order, each once; a batch that was committed but not handed over
+    (a gap, seen when the next one does not follow on) or only announced by ``notify`` is read
+    from the spool, not skipped. Reference: the items as committed."""
+    b = mqtt_broker
+
+    async def scenario() -> None:
+        spool = Spool(tmp_path / "spool.sqlite")
+        reads = []
+        peek = spool.peek
+
+        def counting_peek(*a: Any) -> Any:
+            got = peek(*a)
+            reads.append(len(got))
+            return got
+
+        spool.peek = counting_peek  # type: ignore[method-assign]
+        topic = f"{PREFIX}/pump/edge"
+        with Collector(b.host, b.port, [topic]) as c:
+            pub = Publisher(mqtt_cfg(b.host, b.port), PREFIX, spool)
+            task = asyncio.create_task(pub.run(asyncio.Event()))
+            try:
+                await c.await_for(lambda: pub.counters.connected, WAIT, "connected")
+                sent = []
+                for s in range(1, 61):
+                    items = topic_for(records.edge("pump", float(s), s % 2, 1.0, s), PREFIX, 1)[:1]
+                    first = spool.put_many(items)
+                    sent += items
+                    if s % 20 == 0:  # committed and announced only: read from the spool
+                        pub.notify()
+                    elif s != 33:  # 33: neither (the next offer does not follow on: a gap)
+                        pub.offer(first, items)
+                    await asyncio.sleep(0.005)
+                await c.await_for(lambda: len(c.on(topic)) >= 60, WAIT, "60 edges")
+                got = [m.payload for m in c.snapshot() if m.topic == topic]
+                assert got == [p for _, p, *_ in sent]
+                # the spool was read for the gaps (and at the start), not for every batch
+                assert len(reads) < 30
+                # the stream went quiet: the acknowledgements left for a next commit that does
+                # not come are committed on their own
+                await c.await_for(lambda: spool.acks_deferred == 0 and pub.acked == 60, WAIT,
+                                  "acknowledgements committed")
+                assert len(spool) == 0
+                await pub.shutdown(5.0)
+                assert len(spool) == 0 and pub.acked == 60
+            finally:
+                await stop_task(task)
+                spool.close()
+
+    asyncio.run(scenario())
+
+
 def test_publish_timeout_is_finite_by_default() -> None:
     # A PUBACK that never comes must end the session (and the items be re-sent), not hang it.
     pub = Publisher(Mqtt(keepalive_s=15), PREFIX, spool=None)  # type: ignore[arg-type]

@@ -56,3 +56,13 @@ def test_start_gives_a_steady_pace_from_the_moment_a_condition_began():
     assert ticks == [30, 60, 90]
     rl.reset()
     assert rl.due() == 1  # reset: the next occurrence is reported again at once (first=0 → due)
+
+
+def test_drain_hands_over_what_is_held_once():
+    # Reference: the counts put in; what was reported plus what drain returns is all of them.
+    clock = Clock()
+    rl = RateLimitedLog(logging.getLogger("test.ratelimit"), 10.0, first=1, clock=clock)
+    reported = rl.due(2, key="edge") + rl.due(5, key="edge") + rl.due(1, key="stats") + rl.due(4, key="stats")
+    assert reported == 2 + 1
+    assert rl.drain() == {"edge": 5, "stats": 4}
+    assert rl.drain() == {} and rl.held("edge") == 0

@@ -113,6 +113,75 @@ def test_ids_are_never_reused_after_everything_was_acknowledged(tmp_path: Path) 
 # -- state ----------------------------------------------------------------------------------
 
 
+def test_put_many_returns_the_first_id_of_a_contiguous_run(tmp_path: Path) -> None:
+    # Reference: the ids peek reports for the items, in the order they were put.
+    with Spool(tmp_path / "s.sqlite") as sp:
+        firsts = [sp.put_many([item("edge", k) for k in range(n)]) for n in (1, 3, 2)]
+        assert sp.put_many([], state={"a": {"seq": 1}}) is None
+        ids = [it.id for it in sp.peek(100)]
+    assert ids == list(range(firsts[0], firsts[0] + 6))
+    assert firsts == [ids[0], ids[1], ids[4]]
+
+
+_DEFERRER = textwrap.dedent(
+    """
+    import sys
+    from streamcond.io.spool import Spool
+
+    sp = Spool(sys.argv[1])
+    ids = [it.id for it in sp.peek(100)]
+    assert sp.ack_soon(ids[:2])
+    print(len(sp), [it.id for it in sp.peek(100)] == ids[2:], flush=True)
+    if sys.argv[2] == "commit":
+        sp.put_many([("p/level/edge", b"new", 1, False, "edge")])
+    print("done", flush=True)
+    sys.stdin.read()  # until killed
+    """
+)
+
+
+@pytest.mark.parametrize("then", ["commit", "nothing"])
+def test_deferred_acks_ride_on_the_next_commit_and_sigkill_only_resends(tmp_path: Path, then: str) -> None:
+    # Reference: what the file holds after a SIGKILL, read by a fresh Spool. An acknowledgement
+    # left for the next commit is gone with that commit; without one it is lost to the kill,
+    # which brings the record back to be sent again (at least once, never a loss).
+    path = tmp_path / "s.sqlite"
+    with Spool(path) as sp:
+        sp.put_many([item("edge", k) for k in range(4)])
+    script = tmp_path / "deferrer.py"
+    script.write_text(_DEFERRER)
+    proc = subprocess.Popen([sys.executable, str(script), str(path), then], stdin=subprocess.PIPE,
+                            stdout=subprocess.PIPE, text=True, cwd=Path(__file__).resolve().parents[1])
+    try:
+        assert proc.stdout.readline().split() == ["2", "True"]  # type: ignore[union-attr]
+        assert proc.stdout.readline().strip() == "done"  # type: ignore[union-attr]
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+    finally:
+        proc.kill()
+        proc.wait()
+        proc.stdout.close()  # type: ignore[union-attr]
+        proc.stdin.close()  # type: ignore[union-attr]
+    with Spool(path) as sp:
+        got = [json.loads(it.payload)["n"] if it.payload != b"new" else "new" for it in sp.peek(100)]
+    assert got == ([2, 3, "new"] if then == "commit" else [0, 1, 2, 3])
+
+
+def test_deferred_acks_flush_and_close(tmp_path: Path) -> None:
+    # Reference: the file as a fresh Spool reads it after flush_acks and after close.
+    path = tmp_path / "s.sqlite"
+    with Spool(path) as sp:
+        sp.put_many([item("edge", k) for k in range(5)])
+        ids = [it.id for it in sp.peek(10)]
+        assert sp.ack_soon([ids[0]]) and sp.acks_deferred == 1
+        sp.flush_acks()
+        assert sp.acks_deferred == 0 and len(sp) == 4
+        assert sp.ack_soon(ids[1:3])
+        assert len(sp) == 2
+    with Spool(path) as sp:  # close committed the rest
+        assert contents(sp) == [("edge", 3), ("edge", 4)]
+
+
 def test_state_round_trip_and_upsert(tmp_path: Path) -> None:
     path = tmp_path / "s.sqlite"
     level = {

@@ -65,7 +65,16 @@ acknowledged within ``publish_timeout_s`` ends the session. aiomqtt ignores a di
 before CONNACK and would wait out its whole connect timeout on an endpoint that accepts the
 connection and closes it; the publisher wraps ``on_disconnect`` to fail that attempt at once.
 
-The event loop: spool calls (``peek``, ``ack``) run in a worker thread
+Live, caught up (the usual case): the daemon's emitter hands each batch it has just committed
+to :meth:`Publisher.offer` with the ids the spool gave it, and a publisher that has read
+everything before them sends them as they are — no read back from the spool; anything that
+does not follow on (a gap, a backlog still being read, a new session) sends it back to reading
+the spool, so the shortcut never skips or reorders. The acknowledgements of a live stream go
+with the spool's next commit (``Spool.ack_soon``: no transaction and no thread hop of their
+own; on their own after :data:`ACK_FLUSH_S` when nothing else is committed): a SIGKILL before
+that can only bring acknowledged records back, to be sent again — at least once, never a loss.
+
+The event loop: the other spool calls (``peek``, ``ack``) run in a worker thread
 (:func:`asyncio.to_thread`). They are short — a range read of at most :data:`PAGE` rows, one
 DELETE per batch of acknowledgements, batched so a burst of PUBACKs costs one commit — but the
 spool serialises callers with a lock, and the daemon's ``put_many`` holds it through an fsync
@@ -96,8 +105,9 @@ import aiomqtt
 
 from ..config import Mqtt
 from .. import records
+from ..ratelimit import RateLimitedLog
 from ..records import to_json
-from .spool import Spool, SpoolError
+from .spool import Spool, SpoolError, SpoolItem
 
 log = logging.getLogger(__name__)
 
@@ -267,7 +277,7 @@ class _Session:
 
 
 class _QuietLog(logging.LoggerAdapter):
-    """The MQTT client's own logger, rate-limited.
+    """The MQTT client's own logger, rate-limited (:class:`streamcond.ratelimit.RateLimitedLog`).
 
     paho logs every socket error ("failed to receive on socket ...") at ERROR, again at every
     reconnect attempt while a broker is away; the publisher reports the same failures itself
@@ -279,25 +289,18 @@ class _QuietLog(logging.LoggerAdapter):
     def __init__(self, logger: logging.Logger, interval_s: float, clock: Any = time.monotonic) -> None:
         super().__init__(logger, {})
         self.interval_s = interval_s
-        self._clock = clock
-        self._last: dict[str, float] = {}
-        self._held: dict[str, int] = {}
+        self._limit = RateLimitedLog(logger, interval_s, clock=clock)
 
     def log(self, level: int, msg: Any, *args: Any, **kwargs: Any) -> None:
         if level >= logging.WARNING:
-            key = str(msg)
-            now = self._clock()
-            last = self._last.get(key)
-            if last is not None and now - last < self.interval_s:
-                self._held[key] = self._held.get(key, 0) + 1
-                level = logging.DEBUG
-            else:
-                self._last[key] = now
-                held = self._held.pop(key, 0)
-                if held:
-                    msg = f"{msg} ({held} more like it in the last {self.interval_s:g} s)"
+            n = self._limit.due(1, key=str(msg))
+            if n:
+                if n > 1:
+                    msg = f"{msg} ({n - 1} more like it in the last {self.interval_s:g} s)"
                 level = logging.WARNING
                 kwargs.pop("exc_info", None)  # a socket error needs no traceback
+            else:
+                level = logging.DEBUG
         super().log(level, msg, *args, **kwargs)
 
 
@@ -310,6 +313,14 @@ ACK_BATCH = 256
 
 #: Spool items read ahead per page (a backlog is read in pages this long; see ``_pump``).
 PAGE = 1024
+
+#: Acknowledgements left for the spool's next commit (``Spool.ack_soon``) are committed on
+#: their own after this long without one (a quiet stream), and at once beyond ACK_BATCH.
+ACK_FLUSH_S = 1.0
+
+#: Items handed over by :meth:`Publisher.offer` and not yet taken are kept up to this many;
+#: beyond, they are forgotten and read from the spool instead (a slow broker).
+FED_MAX = 4096
 
 #: This many items read ahead and not yet sent make a *backlog* (a broker coming back after an
 #: outage): in it, a retained ``state`` followed by a later ``state`` of the same channel is
@@ -360,6 +371,11 @@ class Publisher:
         self.status_topic = f"{self.prefix}/status"
         self.counters = PublisherCounters()
         self._wake = asyncio.Event()
+        # Items just committed, handed over by offer(): (first id, items), in commit order.
+        self._fed: collections.deque[tuple[int, list[Message]]] = collections.deque()
+        self._fed_n = 0
+        self._unread = False  # the spool may hold items neither read nor handed over
+        self._kick_fut: asyncio.Future[None] | None = None  # what the pump waits on (_kick)
         self._closing = asyncio.Event()  # shutdown() asked for the final drain
         self._deadline: float | None = None
         self._run_task: asyncio.Task[Any] | None = None
@@ -371,7 +387,59 @@ class Publisher:
 
     def notify(self) -> None:
         """New items are in the spool (call after each ``put_many``); cheap, never blocks."""
+        self._unread = True
         self._wake.set()
+        self._kick()
+
+    def _kick(self, *_: Any) -> None:
+        """Wake the pump: something it waits for happened (it looks again at everything)."""
+        f = self._kick_fut
+        if f is not None and not f.done():
+            f.set_result(None)
+
+    def offer(self, first_id: int | None, items: list[Message]) -> None:
+        """Items just committed to the spool (``(topic, payload, qos, retain, kind)`` as given
+        to ``put_many``, ids from ``first_id`` on, as it returned), handed over so that a
+        publisher that has read everything before them sends them without reading them back.
+        Only a shortcut: whenever they do not follow on from what was read (a gap, a backlog,
+        a new session), the spool is read instead. Call it on the event loop."""
+        if first_id is None or not items:
+            self.notify()
+            return
+        if self._fed_n + len(items) > FED_MAX:
+            self._fed.clear()
+            self._fed_n = 0
+            self._unread = True
+        else:
+            self._fed.append((first_id, items))
+            self._fed_n += len(items)
+        self._wake.set()
+        self._kick()
+
+    def _take_fed(self, last_read: int, unsent: collections.deque[Any]) -> int:
+        """Move the offered items that follow on from ``last_read`` into ``unsent``; the new
+        last id read. A gap (an item committed but not offered) makes the spool be read."""
+        fed = self._fed
+        while fed:
+            first, items = fed.popleft()
+            self._fed_n -= len(items)
+            last = first + len(items) - 1
+            if last <= last_read:
+                continue  # already read from the spool
+            if first > last_read + 1:
+                self._unread = True  # something between: read it from the spool
+                fed.clear()
+                self._fed_n = 0
+                break
+            for k in range(last_read + 1 - first, len(items)):
+                topic, payload, qos, retain, kind = items[k]
+                unsent.append(SpoolItem(first + k, topic, payload, qos, retain, kind))
+            last_read = last
+        return last_read
+
+    def _drop_fed(self) -> None:
+        self._fed.clear()
+        self._fed_n = 0
 
     @property
     def published(self) -> int:
@@ -602,7 +670,7 @@ class Publisher:
         paho = client._client  # aiomqtt 2.x keeps the paho client here (module docstring)
         inflight = sess.inflight
         by_mid: dict[int, _Sent] = {}
-        progress = asyncio.Event()
+        kick = self._kick
         aiomqtt_on_publish = paho.on_publish
 
         def on_publish(c: Any, userdata: Any, mid: int, reason: Any, props: Any = None) -> None:
@@ -610,10 +678,13 @@ class Publisher:
             sent = by_mid.pop(mid, None)
             if sent is not None:
                 sent.done = True
-                progress.set()
+                if inflight and inflight[0] is sent:
+                    kick()  # the head is done: there is something to acknowledge
 
         paho.on_publish = on_publish
         last_read = 0  # a fresh session re-sends everything not yet acknowledged
+        self._drop_fed()
+        self._unread = True
         unsent: collections.deque[Any] = collections.deque()  # read from the spool, not yet sent
         superseded_ids: set[int] = set()
 
@@ -627,11 +698,15 @@ class Publisher:
                         latest[it.topic] = it.id
 
         to_ack: list[int] = []
+        # One future to wait on, completed by whichever happens first (_kick): the head's
+        # acknowledgement, new items, a stop, the shutdown, the disconnection; a timer for the
+        # head's deadline. Cheaper per turn than asyncio.wait() over a future for each.
         stop_waiter = asyncio.ensure_future(stop.wait())
         closing_waiter = asyncio.ensure_future(self._closing.wait())
-        wake_waiter: asyncio.Future[Any] | None = None
-        progress_waiter: asyncio.Future[Any] | None = None
+        for w in (stop_waiter, closing_waiter, watcher):
+            w.add_done_callback(kick)
         maybe_more = True  # the spool may hold items not yet read (skip needless reads)
+        flushing: asyncio.Future[Any] | None = None  # acknowledgements being committed alone
         try:
             while True:
                 _raise_if_cancelled()
@@ -640,23 +715,48 @@ class Publisher:
                     return  # plain stop: no further drain, un-acked items stay spooled
                 if closing and self._remaining(loop) <= 0.0:
                     return
-                if not inflight and not unsent:
-                    # Nothing outstanding: all that is in the spool is unsent. Reading from the
-                    # start also copes with a spool that reuses ids once it has emptied.
-                    last_read = 0
-                    if to_ack:
+                if not inflight and not unsent and to_ack:
+                    # Nothing outstanding: the acknowledgements go with the spool's next commit
+                    # (no transaction, no thread hop of their own), or after ACK_FLUSH_S.
+                    if self.spool.ack_soon(to_ack):
+                        self.counters.acked += len(to_ack)
+                        to_ack.clear()
+                    else:
                         await self._ack(to_ack)
+                # Acknowledgements no commit has taken for ACK_FLUSH_S (a quiet stream) are
+                # committed alone, beside the pump: sending never waits for that commit.
+                since = self.spool.acks_deferred_since
+                ack_due = None if since is None else since + ACK_FLUSH_S
+                if flushing is not None and not flushing.done():
+                    ack_due = None  # its end wakes the pump (no timer meanwhile: no spinning)
+                elif ack_due is not None and (
+                    time.monotonic() >= ack_due or closing or self.spool.acks_deferred >= ACK_BATCH
+                ):
+                    flushing = asyncio.ensure_future(self._flush_acks())
+                    flushing.add_done_callback(kick)
+                    ack_due = None
                 room = self.window - len(inflight)
-                if room > 0 and len(unsent) < room and (maybe_more or self._wake.is_set()):
+                if room > 0 and len(unsent) < room:
                     self._wake.clear()
-                    page = max(PAGE, room)
-                    items = await asyncio.to_thread(self.spool.peek, page, last_read)
-                    maybe_more = len(items) == page  # a full page: there may be more behind it
-                    if items:
-                        last_read = items[-1].id
-                        unsent.extend(items)
-                        if len(unsent) >= BACKLOG:
-                            _mark_superseded(unsent)
+                    if maybe_more or self._unread:
+                        self._drop_fed()  # newer than what is unread: read them in turn
+                    else:
+                        # Caught up: what was just committed follows on from what was read.
+                        last_read = self._take_fed(last_read, unsent)
+                    if maybe_more or self._unread:
+                        self._unread = False
+                        if not inflight and not unsent:
+                            # Nothing outstanding: all that is in the spool is unsent. Reading
+                            # from the start also copes with a spool that reuses ids.
+                            last_read = 0
+                        page = max(PAGE, room)
+                        items = await asyncio.to_thread(self.spool.peek, page, last_read)
+                        maybe_more = len(items) == page  # a full page: there may be more
+                        if items:
+                            last_read = items[-1].id
+                            unsent.extend(items)
+                            if len(unsent) >= BACKLOG:
+                                _mark_superseded(unsent)
                 now = loop.time()
                 while unsent and len(inflight) < self.window:
                     it = unsent.popleft()
@@ -679,27 +779,32 @@ class Publisher:
                         by_mid[info.mid] = sent
                     self.counters.published += 1
                 if not inflight and not unsent and closing:
-                    if to_ack:
-                        await self._ack(to_ack)
+                    if flushing is not None:
+                        await flushing
+                    if to_ack or self.spool.acks_deferred:
+                        await self._ack(to_ack)  # (the spool's ack takes the deferred ones too)
                     return  # drained
-                if not (inflight and inflight[0].done):
-                    progress.clear()
-                    if progress_waiter is None or progress_waiter.done():
-                        progress_waiter = asyncio.ensure_future(progress.wait())
-                    waits: list[asyncio.Future[Any]] = [watcher, progress_waiter]
-                    if not closing:  # (once closing, both are done and would make this spin)
-                        waits += [stop_waiter, closing_waiter]
-                    if len(inflight) < self.window:
-                        if wake_waiter is None or wake_waiter.done():
-                            wake_waiter = asyncio.ensure_future(self._wake.wait())
-                        waits.append(wake_waiter)
+                woken = self._wake.is_set() and len(inflight) < self.window
+                if not (inflight and inflight[0].done) and not woken and not watcher.done() and (
+                    closing or not (stop.is_set() or self._closing.is_set())
+                ):
                     timeout = None
                     if inflight:  # the head's acknowledgement is due by then
                         timeout = max(0.0, inflight[0].t0 + self.publish_timeout_s - loop.time())
+                    if ack_due is not None:
+                        left = max(0.0, ack_due - time.monotonic())
+                        timeout = left if timeout is None else min(timeout, left)
                     if closing:
                         left = self._remaining(loop)
                         timeout = left if timeout is None else min(timeout, left)
-                    await asyncio.wait(waits, timeout=timeout, return_when=asyncio.FIRST_COMPLETED)
+                    fut = self._kick_fut = loop.create_future()
+                    timer = loop.call_later(timeout, kick) if timeout is not None else None
+                    try:
+                        await fut
+                    finally:
+                        self._kick_fut = None
+                        if timer is not None:
+                            timer.cancel()
                 if watcher.done():
                     watcher.result()  # raises the disconnection error
                     raise aiomqtt.MqttError("disconnected")
@@ -726,9 +831,17 @@ class Publisher:
                 except SpoolError as e:
                     log.warning("MQTT: acknowledgements could not be stored: %s", e)
                 to_ack.clear()
-            for w in (stop_waiter, closing_waiter, wake_waiter, progress_waiter):
-                if w is not None:
-                    w.cancel()
+            for w in (stop_waiter, closing_waiter, watcher):
+                w.remove_done_callback(kick)
+            for w in (stop_waiter, closing_waiter):
+                w.cancel()
+
+    async def _flush_acks(self) -> None:
+        """Commit the acknowledgements left with the spool (in a worker thread)."""
+        try:
+            await asyncio.to_thread(self.spool.flush_acks)
+        except SpoolError as e:  # e.g. closed meanwhile: they are committed at the next start
+            log.debug("MQTT: acknowledgements not committed yet: %s", e)
 
     async def _ack(self, ids: list[int]) -> None:
         """Remove acknowledged items from the spool (in a worker thread); empties ``ids``."""

@@ -90,6 +90,7 @@ from typing import Any, Literal
 
 from .. import records
 from ..errors import StreamcondError
+from ..ratelimit import RateLimitedLog
 
 log = logging.getLogger(__name__)
 
@@ -243,16 +244,21 @@ class Spool:
         self.memory_max_records = max(1, min(int(memory_max_records), max_records))
         self._clock = clock
         self._lock = threading.Lock()
-        self._last_warned: dict[str, float] = {}
-        self._unreported: dict[str, int] = {}
+        # one overflow warning per record kind per WARN_INTERVAL_S, with the count since
+        self._drop_log = RateLimitedLog(log, WARN_INTERVAL_S, clock=clock)
         self._conn: sqlite3.Connection | None = None
         # held in memory while the disk cannot be written (module docstring)
         self._mem: deque[_Row] = deque()
         self._mem_state: dict[str, str] = {}
         self._ack_pending: set[int] = set()
+        # acknowledgements left for the next commit (ack_soon); their own small lock, never
+        # held through I/O, so the event loop can add to them while a commit is syncing
+        self._deferred: set[int] = set()
+        self._deferred_at: float | None = None  # time.monotonic() of the oldest of them
+        self._deferred_lock = threading.Lock()
         self._trouble: str | None = None  # what is wrong with the disk, in words
         self._retry_at = 0.0
-        self._trouble_warned = 0.0
+        self._trouble_log = RateLimitedLog(log, WARN_INTERVAL_S, clock=clock)
         self.lost_to_disk = 0
         """Records dropped because the disk could not take them (included in ``dropped``)."""
         self.disk_errors = 0
@@ -407,10 +413,14 @@ class Spool:
         self,
         items: Sequence[Item],
         state: Mapping[str, dict] | None = None,
-    ) -> None:
+    ) -> int | None:
         """Append items ``(topic, payload, qos, retain, kind)`` in order and, in the SAME
         transaction, upsert per-channel state dicts (stored as JSON) — durable when it returns
-        (with ``sync="interval"``: once the next interval's sync has run).
+        (with ``sync="interval"``: once the next interval's sync has run). Returns the id given
+        to the first item (the others follow it one by one: ids are handed out contiguously),
+        or None when there were no items.
+
+        Acknowledgements left for it by :meth:`ack_soon` are committed in the same transaction.
 
         Each state dict replaces the stored dict of its channel whole; channels not named keep
         theirs. The items are checked before anything is written, so a bad item (payload not
@@ -422,14 +432,15 @@ class Spool:
         checked = [_row(i, it) for i, it in enumerate(items)]
         states = {} if state is None else dict(_state_row(ch, d) for ch, d in state.items())
         if not checked and not states:
-            return
+            return None
         with self._lock:
             conn = self._live()
+            first = self._next_id if checked else None
             rows: list[_Row] = [(self._next_id + k, *r) for k, r in enumerate(checked)]
             self._next_id += len(rows)
             if self._trouble is not None and self._clock() < self._retry_at:
                 self._hold(rows, states)  # not yet time to try the disk again
-                return
+                return first
             pending = list(self._mem) + rows
             merged = {**self._mem_state, **states}
             room = self._room(conn)
@@ -438,7 +449,7 @@ class Spool:
                 room = self._room(conn)
                 if room is not None and room < HEADROOM_BYTES:
                     self._hold(rows, states, _LowSpace(f"less than {HEADROOM_BYTES // 1024} KiB free"))
-                    return
+                    return first
             try:
                 drops = self._write(conn, pending, merged)
             except sqlite3.Error as e:
@@ -455,7 +466,7 @@ class Spool:
                         e = e2
                 if drops is None:
                     self._hold(rows, states, e)
-                    return
+                    return first
             if self._trouble is not None:
                 log.warning(
                     "spool %s is writable again: stored %d record(s) held in memory; "
@@ -469,16 +480,18 @@ class Spool:
             if room is not None and room < 2 * HEADROOM_BYTES:
                 self._truncate_log(conn)
             self._report_drops(drops)
+        return first
 
     def _write(self, conn: sqlite3.Connection, rows: list[_Row], states: Mapping[str, str]) -> dict[str, int]:
         """One transaction: pending acknowledgements, the rows, the states, the overflow trim.
         On failure nothing of it is kept (in the file or in the counters)."""
         count, dropped = self._count, self._dropped
+        self._take_deferred()
         try:
             conn.execute("BEGIN IMMEDIATE")
             if self._ack_pending:
                 gone = conn.executemany(
-                    "DELETE FROM queue WHERE id = ?", [(i,) for i in self._ack_pending]
+                    "DELETE FROM queue WHERE id BETWEEN ? AND ?", _runs(self._ack_pending)
                 ).rowcount
                 self._count -= max(0, gone)
             if rows:
@@ -544,16 +557,16 @@ class Spool:
             words = self._trouble_words(e)
             if self._trouble is None:
                 self._trouble = words
-                self._trouble_warned = now
+                self._trouble_log.start()  # "still ..." a full interval from now
                 log.warning(
                     "spool %s cannot be written (%s): records are kept in memory (at most %d) "
                     "and sent live while the broker is reachable; trying the disk again every "
                     "%g s", self.path, words, self.memory_max_records, DISK_RETRY_S,
                 )
-            elif now - self._trouble_warned >= WARN_INTERVAL_S:
+            else:
                 self._trouble = words
-                self._trouble_warned = now
-                log.warning(
+                self._trouble_log.log(
+                    logging.WARNING,
                     "spool %s still cannot be written (%s): %d record(s) in memory, %d lost to "
                     "the disk so far", self.path, words, len(self._mem) + len(rows),
                     self.lost_to_disk,
@@ -656,13 +669,10 @@ class Spool:
         """Log committed drops, at most once per :data:`WARN_INTERVAL_S` per kind."""
         if not drops:
             return
-        now = self._clock()
         for kind, n in drops.items():
-            self._unreported[kind] = self._unreported.get(kind, 0) + n
-            last = self._last_warned.get(kind)
-            if last is None or now - last >= WARN_INTERVAL_S:
-                self._last_warned[kind] = now
-                self._warn(kind, self._unreported.pop(kind))
+            due = self._drop_log.due(n, key=kind)
+            if due:
+                self._warn(kind, due)
 
     def _warn(self, kind: str, n: int) -> None:
         bound = self.max_records if self._trouble is None else self.memory_max_records
@@ -691,16 +701,18 @@ class Spool:
             return []
         with self._lock:
             conn = self._live()
+            with self._deferred_lock:
+                skip = self._ack_pending | self._deferred if self._deferred else self._ack_pending
             try:
                 rows = conn.execute(
                     "SELECT id, topic, payload, qos, retain, kind FROM queue "
                     "WHERE id > ? ORDER BY id LIMIT ?",
-                    (int(after_id), int(limit) + len(self._ack_pending)),
+                    (int(after_id), int(limit) + len(skip)),
                 ).fetchall()
             except sqlite3.Error as e:
                 raise self._error("read", e) from None
-            if self._ack_pending:
-                rows = [r for r in rows if r[0] not in self._ack_pending]
+            if skip:
+                rows = [r for r in rows if r[0] not in skip]
             rows = rows[: int(limit)]
             if len(rows) < limit and self._mem:
                 room = int(limit) - len(rows)
@@ -726,10 +738,11 @@ class Spool:
         :meth:`peek`, and deleted with the next successful commit.
         """
         keys = {int(i) for i in ids}
-        if not keys:
-            return
         with self._lock:
             conn = self._live()
+            keys |= self._take_deferred(into_pending=False)
+            if not keys:
+                return
             if self._mem and max(keys) >= self._mem[0][0]:
                 held = {r[0] for r in self._mem} & keys
                 if held:
@@ -766,14 +779,54 @@ class Spool:
                 return
             self._count -= max(0, removed)
 
+    def ack_soon(self, ids: Iterable[int]) -> bool:
+        """Acknowledge items with the next commit instead of a transaction of their own.
+
+        Never waits for the disk (its own small lock, not the one a commit holds through its
+        fsync), so the event loop may call it. From the moment it returns the items are left
+        out of :meth:`peek` and ``len()``; they are deleted in the next :meth:`put_many`'s
+        transaction, or by :meth:`ack` (with no ids: :meth:`flush_acks`) or :meth:`close`,
+        whichever comes first. Until then a SIGKILL or a power cut only brings them back, to be
+        sent again — a duplicate, which QoS 1 permits and consumers catch by ``seq``, never a
+        loss. False (nothing done; use :meth:`ack`) while records are held in memory because
+        the disk cannot be written: those need the full bookkeeping of :meth:`ack`.
+        """
+        if self._mem or self._trouble is not None:
+            return False
+        with self._deferred_lock:
+            if not self._deferred:
+                self._deferred_at = time.monotonic()
+            self._deferred.update(int(i) for i in ids)
+        return True
+
+    @property
+    def acks_deferred(self) -> int:
+        """Acknowledgements :meth:`ack_soon` has left for the next commit."""
+        return len(self._deferred)
+
+    @property
+    def acks_deferred_since(self) -> float | None:
+        """``time.monotonic()`` when the oldest acknowledgement still left for the next commit
+        was left (None: none is)."""
+        return self._deferred_at if self._deferred else None
+
+    def flush_acks(self) -> None:
+        """Commit the acknowledgements :meth:`ack_soon` left (a no-op when there are none)."""
+        if self._deferred:
+            self.ack(())
+
+    def _take_deferred(self, into_pending: bool = True) -> set[int]:
+        """The ids :meth:`ack_soon` left (under the main lock): into ``_ack_pending`` (for
+        :meth:`_write`), or returned."""
+        with self._deferred_lock:
+            ids, self._deferred = self._deferred, set()
+            self._deferred_at = None
+        if into_pending:
+            self._ack_pending |= ids
+        return ids
+
     def _delete(self, conn: sqlite3.Connection, params: list[tuple[int]]) -> int:
-        # Runs of consecutive ids (a drained backlog is one run) are one range delete each.
-        runs: list[tuple[int, int]] = []
-        for (k,) in sorted(params):
-            if runs and k == runs[-1][1] + 1:
-                runs[-1] = (runs[-1][0], k)
-            else:
-                runs.append((k, k))
+        runs = _runs(k for (k,) in params)
         if self.sync == "always":
             conn.execute("PRAGMA synchronous=NORMAL")
         try:
@@ -803,7 +856,7 @@ class Spool:
 
     def __len__(self) -> int:
         """Records stored or held in memory (not yet acknowledged, not dropped)."""
-        return self._count - len(self._ack_pending) + len(self._mem)
+        return max(0, self._count - len(self._ack_pending) - len(self._deferred) + len(self._mem))
 
     @property
     def dropped(self) -> int:
@@ -846,6 +899,7 @@ class Spool:
             if self._sync_timer is not None:
                 self._sync_timer.cancel()
                 self._sync_timer = None
+            self._take_deferred()
             if self._mem or self._mem_state or self._ack_pending:
                 try:
                     self._write(conn, list(self._mem), self._mem_state)
@@ -857,9 +911,8 @@ class Spool:
                             "spool %s: %d record(s) held in memory could not be stored (%s) "
                             "and are lost", self.path, len(self._mem), self._trouble_words(e),
                         )
-            for kind, n in sorted(self._unreported.items()):
+            for kind, n in sorted(self._drop_log.drain().items()):
                 self._warn(kind, n)
-            self._unreported.clear()
             try:
                 conn.close()  # checkpoints the log into the database and removes it
             except sqlite3.Error as e:
@@ -899,6 +952,17 @@ def spool_options(mq: Any) -> dict[str, Any]:
         "sync": mq.spool_sync,
         "sync_interval_s": mq.spool_sync_interval_ms / 1000.0,
     }
+
+
+def _runs(ids: Iterable[int]) -> list[tuple[int, int]]:
+    """Consecutive ids as ``(first, last)`` runs: a drained backlog is one range delete."""
+    runs: list[tuple[int, int]] = []
+    for k in sorted(ids):
+        if runs and k == runs[-1][1] + 1:
+            runs[-1] = (runs[-1][0], k)
+        else:
+            runs.append((k, k))
+    return runs
 
 
 def _row(index: int, item: Any) -> tuple[str, bytes, int, int, str, int]:

@@ -5,6 +5,8 @@ every ``--toggle-ms`` of device time, staggered), into a private local MQTT brok
 The same workload runs through two programs, alternating A B A B at each rate:
 
 * ``daemon`` — ``streamcond run`` with everything on (spool, stats, retained state);
+* ``base`` (with ``--base DIR``) — ``streamcond run`` from another checkout DIR (say, the
+  main branch), for a before/after comparison in the same run;
 * ``hand`` — tests/bench/hand_loop.py, the minimal loop an engineer would write for the bare
   job (pyserial reads, numpy parses each burst, vectorised hysteresis, paho publishes each
   edge at QoS 1; no spool, no stats).
@@ -18,7 +20,7 @@ Not part of the test suite (no timed assertions there). Run from the project roo
 benchmark lock:
 
     flock /tmp/streamcond-bench.lock python tests/bench/bench_daemon.py [--rates 1000,100,10]
-        [--seconds 10] [--reps 2] [--json] [--ramp]
+        [--seconds 10] [--reps 2] [--json] [--ramp] [--base DIR --sides daemon,base,hand]
 
 ``--ramp`` afterwards steps the daemon's rate up (2 k, 4 k, ...) to find the highest one it
 sustains (edges still arriving within 100 ms at the end of a step).
@@ -50,6 +52,8 @@ PROFILE = os.environ.get("STREAMCOND_BENCH_PROFILE")  # a path: profile the daem
 #: 8 × 2 = 16 edges/s (level-type channels, the usual case), 50 ms gives 160 edges/s
 #: (eight 10 Hz pulse channels: a busy station).
 TOGGLE_MS = 500
+#: ``--base DIR``: the checkout the ``base`` side runs streamcond from.
+BASE: Path | None = None
 
 
 def config(path: Path, port: Path, mqtt_port: int, spool: Path, rate_hz: float) -> None:
@@ -122,13 +126,20 @@ def proc_cpu_s(pid: int, task: str = "") -> float:
     return (int(fields[11]) + int(fields[12])) / ticks  # utime + stime
 
 
-def thread_cpu(pid: int) -> dict[str, tuple[str, float]]:
-    """CPU seconds so far of each thread: {tid: (name, seconds)}."""
+def thread_cpu(pid: int) -> dict[str, tuple[str, float, int]]:
+    """CPU seconds and wake-ups so far of each thread: {tid: (name, seconds, wake-ups)}.
+
+    Wake-ups: the thread's voluntary context switches (``/proc/<pid>/task/<tid>/status``),
+    one per time it blocked (a read, a wait with or without timeout) and was woken again."""
     out = {}
     for d in Path(f"/proc/{pid}/task").iterdir():
         try:
             name = (d / "comm").read_text().strip()
-            out[d.name] = (name, proc_cpu_s(pid, d.name))
+            wakes = 0
+            for line in (d / "status").read_text().splitlines():
+                if line.startswith("voluntary_ctxt_switches:"):
+                    wakes = int(line.split()[1])
+            out[d.name] = (name, proc_cpu_s(pid, d.name), wakes)
         except OSError:  # the thread ended meanwhile
             pass
     return out
@@ -194,9 +205,10 @@ def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: 
 
     col._c.on_message = on_message
     col.start()
-    if side == "daemon":
-        prof = ["-m", "cProfile", "-o", PROFILE] if PROFILE else None
-        proc = DaemonProcess(cfgp, tmp / f"{name}.log", prefix=prof).start()
+    if side in ("daemon", "base"):
+        prof = ["-m", "cProfile", "-o", PROFILE] if PROFILE and side == "daemon" else None
+        root = BASE if side == "base" else None
+        proc = DaemonProcess(cfgp, tmp / f"{name}.log", prefix=prof, root=root).start()
     else:
         proc = HandProcess(pty.path, broker.port, tmp / f"{name}.log").start()
     proc.wait_log("opened", 20)
@@ -244,9 +256,11 @@ def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: 
     q = lambda p: lat[min(len(lat) - 1, int(p * len(lat)))] * 1000 if lat else float("nan")  # noqa: E731
     wall = wall1 - wall0
     threads = {}
-    for tid, (nm, s1) in th1.items():
-        s0 = th0.get(tid, (nm, 0.0))[1]
+    wakeups = {}
+    for tid, (nm, s1, w1) in th1.items():
+        _, s0, w0 = th0.get(tid, (nm, 0.0, 0))
         threads[f"{nm}[{tid}]"] = (s1 - s0) / wall
+        wakeups[f"{nm}[{tid}]"] = (w1 - w0) / wall
     return {
         "side": side,
         "rate_hz": rate_hz,
@@ -259,6 +273,8 @@ def run_step(tmp: Path, broker, side: str, rate_hz: float, seconds: float, tag: 
         "tail_latency_ms": max(late_tail) * 1000 if late_tail else float("nan"),
         "cpu_share_of_one_core": (cpu1 - cpu0) / wall,
         "threads_share_of_one_core": dict(sorted(threads.items(), key=lambda kv: -kv[1])),
+        "threads_wakeups_per_s": dict(sorted(wakeups.items(), key=lambda kv: -kv[1])),
+        "wakeups_per_s": sum(wakeups.values()),
         "peak_rss_mib": hwm,
         "writer_behind_s": w.behind,
     }
@@ -275,8 +291,16 @@ def summarise(runs: list[dict]) -> dict:
             continue
         dc = statistics.mean(x["cpu_share_of_one_core"] for x in d)
         hc = statistics.mean(x["cpu_share_of_one_core"] for x in h)
+        b = by.get(("base", rate), [])
+        bc = statistics.mean(x["cpu_share_of_one_core"] for x in b) if b else None
         table.append({
             "rate_hz": rate,
+            "base_cpu": bc,
+            "base_ratio": bc / hc if bc is not None and hc > 0 else None,
+            "base_ratios_per_pair": [a["cpu_share_of_one_core"] / c["cpu_share_of_one_core"]
+                                     if c["cpu_share_of_one_core"] > 0 else float("inf") for a, c in zip(b, h)],
+            "base_p99_ms": max(x["latency_p99_ms"] for x in b) if b else None,
+            "base_rss_mib": max(x["peak_rss_mib"] for x in b) if b else None,
             "daemon_cpu": dc,
             "hand_cpu": hc,
             "ratio": dc / hc if hc > 0 else float("inf"),
@@ -302,10 +326,14 @@ def main() -> int:
     ap.add_argument("--step-seconds", type=float, default=6.0, help="length of each ramp step")
     ap.add_argument("--max-rate", type=float, default=32000.0)
     ap.add_argument("--json", action="store_true")
+    ap.add_argument("--base", type=Path, help="checkout to run the 'base' side's streamcond from")
     ap.add_argument("--toggle-ms", type=int, default=500, help="half-period of each channel's square wave")
     args = ap.parse_args()
-    global TOGGLE_MS
+    global TOGGLE_MS, BASE
     TOGGLE_MS = args.toggle_ms
+    BASE = args.base.resolve() if args.base else None
+    if "base" in args.sides.split(",") and BASE is None:
+        ap.error("the 'base' side needs --base DIR")
     rates = [float(x) for x in args.rates.split(",") if x]
     sides = [s for s in args.sides.split(",") if s]
     out: dict = {"toggle_ms": TOGGLE_MS, "channels": CHANNELS, "seconds": args.seconds}
@@ -316,8 +344,10 @@ def main() -> int:
             out["broker"] = broker.kind
             for rate in rates:
                 for rep in range(args.reps):
-                    # A B, then B A: neither side always runs first
-                    order = sides if rep % 2 == 0 else sides[::-1]
+                    # A B, then B A: neither side always runs first (with three sides, each
+                    # runs first in turn)
+                    k = rep % len(sides)
+                    order = sides[k:] + sides[:k] if len(sides) > 2 else (sides if rep % 2 == 0 else sides[::-1])
                     for side in order:
                         r = run_step(tmp, broker, side, rate, args.seconds, f"-{rep}")
                         runs.append(r)
@@ -327,7 +357,10 @@ def main() -> int:
                             print(f"  {side:6s} {rate:6.0f}/s: CPU {r['cpu_share_of_one_core'] * 100:5.1f} %  "
                                   f"p50 {r['latency_p50_ms']:5.1f} ms  p99 {r['latency_p99_ms']:5.1f} ms  "
                                   f"RSS {r['peak_rss_mib']:5.1f} MiB  missing {r['edges_missing']}  "
-                                  f"threads: {top}", flush=True)
+                                  f"wake-ups {r['wakeups_per_s']:6.0f}/s  threads: {top}", flush=True)
+                            if os.environ.get("STREAMCOND_BENCH_WAKEUPS"):
+                                print("      wake-ups/s: " + ", ".join(
+                                    f"{k} {v:.0f}" for k, v in r["threads_wakeups_per_s"].items()), flush=True)
             steps = []
             if args.ramp:
                 rate = 2000.0
@@ -356,6 +389,16 @@ def main() -> int:
             print(f"| {t['rate_hz']:,.0f} samples/s | {t['daemon_cpu'] * 100:.1f} % | {t['hand_cpu'] * 100:.1f} % | "
                   f"{t['ratio']:.2f}× ({pairs}) | {t['daemon_p99_ms']:.1f} ms | {t['hand_p99_ms']:.1f} ms | "
                   f"{t['daemon_rss_mib']:.0f} MiB |")
+        if any(t["base_cpu"] is not None for t in out["table"]):
+            print(f"base ({BASE}):")
+            print("| rate per channel | base CPU | ratio to hand loop (pairs) | base p99 | base peak RSS |")
+            print("|---|---|---|---|---|")
+            for t in out["table"]:
+                if t["base_cpu"] is None:
+                    continue
+                pairs = ", ".join(f"{x:.2f}" for x in t["base_ratios_per_pair"])
+                print(f"| {t['rate_hz']:,.0f} samples/s | {t['base_cpu'] * 100:.1f} % | {t['base_ratio']:.2f}× ({pairs}) | "
+                      f"{t['base_p99_ms']:.1f} ms | {t['base_rss_mib']:.0f} MiB |")
         for r in out["steps"]:
             print(f"  ramp {r['rate_hz']:8.0f} samples/s: p99 {r['latency_p99_ms']:7.1f} ms, tail {r['tail_latency_ms']:7.1f} ms,"
                   f" CPU {r['cpu_share_of_one_core'] * 100:5.1f} %, missing {r['edges_missing']}")
