@@ -154,7 +154,6 @@ def test_tune_reads_parquet_as_it_reads_the_text(tmp_path):
 
 def test_record_to_parquet_replays_like_a_text_capture(tmp_path):
     import threading
-    import time
 
     from daemon_rig import Pty
 
@@ -169,16 +168,22 @@ def test_record_to_parquet_replays_like_a_text_capture(tmp_path):
     try:
         for name in ("cap.txt", "cap.parquet"):
             proc = subprocess.Popen(
-                [sys.executable, "-m", "streamcond", "record", "-c", str(cfg), "-o",
-                 str(tmp_path / name), "--duration", "4"], cwd=ROOT,
+                [sys.executable, "-m", "streamcond", "-v", "record", "-c", str(cfg), "-o",
+                 str(tmp_path / name), "--duration", "6"], cwd=ROOT,
                 stderr=subprocess.PIPE, text=True)
-            time.sleep(1.5)  # the port is open (record resyncs to the first newline)
+            # write only once the port is open (its INFO line; a fixed sleep was too short on a
+            # loaded machine); record resyncs to the first newline
+            head = []
+            while not head or "opened" not in head[-1]:
+                line = proc.stderr.readline()
+                assert line, "".join(head)
+                head.append(line)
             w = threading.Thread(target=pty.write, args=(b"\n" + lines,))
             w.start()
             w.join()
             _, err = proc.communicate(timeout=30)
-            assert proc.returncode == 0, err
-            outs[name] = err
+            assert proc.returncode == 0, "".join(head) + err
+            outs[name] = "".join(head) + err
     finally:
         pty.unplug()
     fcfg = load_config(cfg)
