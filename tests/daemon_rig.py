@@ -271,6 +271,11 @@ class DaemonProcess:
         raise AssertionError(f"{text!r} not in the daemon log:\n{self.log_text()[-3000:]}")
 
 
+def edge_lines(path: Path) -> int:
+    """How many edge records an events file holds."""
+    return sum(1 for ln in path.read_text().splitlines() if '"kind":"edge"' in ln)
+
+
 def edges_of(messages: list[Any], topic: str = "test/station/a/edge") -> list[dict]:
     return [json.loads(m.payload) for m in messages if m.topic == topic]
 

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from broker import broker_kinds, collect, private_broker, retained_snapshot
-from daemon_rig import DaemonProcess, Pty, Relay, SquareWave, edges_of, seq_report, write_config
+from daemon_rig import DaemonProcess, Pty, Relay, SquareWave, edge_lines, edges_of, seq_report, write_config
 
 pytestmark = pytest.mark.slow
 
@@ -269,9 +269,6 @@ def test_reload_to_an_unreachable_broker_and_back_never_stops_the_samples(tmp_pa
     daemon = DaemonProcess(cfg, tmp_path / "daemon.log")
     col = collect(broker.host, broker.port, ["test/station/#"])
 
-    def edges_in_file() -> int:
-        return sum(1 for ln in events.read_text().splitlines() if '"kind":"edge"' in ln)
-
     try:
         wave = SquareWave(pty)
         daemon.start()
@@ -280,7 +277,7 @@ def test_reload_to_an_unreachable_broker_and_back_never_stops_the_samples(tmp_pa
         dead = free_port()  # nothing listens there
         cfg.write_text(good.replace(f"port = {broker.port}", f"port = {dead}"))
         daemon.signal(signal.SIGHUP)
-        before = edges_in_file()
+        before = edge_lines(events)
         wave.run_for(1.0)
         # a second SIGHUP in that window acts at once (a band change)
         cfg.write_text(good.replace(f"port = {broker.port}", f"port = {dead}")
@@ -289,7 +286,7 @@ def test_reload_to_an_unreachable_broker_and_back_never_stops_the_samples(tmp_pa
         wave.run_for(1.0)
         assert daemon.current_log().count("config reloaded") == 2
         # conditioning went on all along: edges reached the events file while MQTT was away
-        assert edges_in_file() >= before + 15
+        assert edge_lines(events) >= before + 15
         cfg.write_text(good)
         daemon.signal(signal.SIGHUP)
         wave.run_for(1.0)

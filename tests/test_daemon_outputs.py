@@ -7,11 +7,12 @@ from __future__ import annotations
 import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import pytest
 
-from daemon_rig import ROOT, DaemonProcess, Pty, SquareWave, write_config
+from daemon_rig import ROOT, DaemonProcess, Pty, SquareWave, edge_lines, write_config
 
 
 def _run_briefly(cfg: Path) -> subprocess.CompletedProcess[str]:
@@ -63,23 +64,23 @@ def test_reload_to_an_unwritable_events_file_is_rejected_and_the_daemon_goes_on(
     good = cfg.read_text()
     daemon = DaemonProcess(cfg, tmp_path / "daemon.log")
 
-    def edges() -> int:
-        return sum(1 for ln in events.read_text().splitlines() if '"kind":"edge"' in ln)
-
     try:
         wave = SquareWave(pty)
         daemon.start()
         daemon.wait_log("opened", 15)
         wave.run_for(1.0)
-        for bad in (str(tmp_path / "no" / "such" / "dir.jsonl"), str(cfg)):
+        for k, bad in enumerate((str(tmp_path / "no" / "such" / "dir.jsonl"), str(cfg)), 1):
             cfg.write_text(good.replace(str(events), bad))
             daemon.signal(signal.SIGHUP)
-            daemon.wait_log("config reload rejected", 10)
-        before = edges()
+            deadline = time.monotonic() + 10
+            while daemon.current_log().count("config reload rejected") < k:
+                assert time.monotonic() < deadline, daemon.current_log()
+                time.sleep(0.05)
+        before = edge_lines(events)
         wave.run_for(1.0)
         # 200 samples/s toggling every 100 ms: ten edges a second, still into the old file
         assert daemon.proc is not None and daemon.proc.poll() is None
-        assert edges() >= before + 5
+        assert edge_lines(events) >= before + 5
         log = daemon.current_log()
         assert log.count("config reload rejected") == 2 and "does not exist" in log
         assert "refusing to write over" in log and "Traceback" not in log
