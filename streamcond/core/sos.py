@@ -22,6 +22,9 @@ compiled section loop loaded on its own:
   (``scipy/signal/_sosfilt``), loaded straight from its file so that the ``scipy.signal``
   package is never imported. Should that fail (another SciPy layout, a frozen install), the
   normal ``scipy.signal.sosfilt`` is used; the arithmetic is the same kernel either way.
+* The **EMA** and **median** prefilters are served the same way: SciPy's compiled ``lfilter``
+  loop (``scipy/signal/_sigtools``) with a numpy ``lfilter_zi``, and scipy.ndimage's compiled
+  1-D rank loop (``scipy/ndimage/_rank_filter_1d``), each with the public function as fallback.
 """
 
 from __future__ import annotations
@@ -312,7 +315,6 @@ def sosfilt(sos: FloatArray, x: FloatArray, zi: FloatArray) -> tuple[FloatArray,
     z = np.array(zi, dtype=np.float64, order="C").reshape(1, sos_c.shape[0], 2)
     kernel(sos_c, y, z)
     return y.reshape(-1), z.reshape(sos_c.shape[0], 2)
-
 
 
 def lfilter(b: FloatArray, a: FloatArray, x: FloatArray, zi: FloatArray

@@ -407,8 +407,7 @@ class Publisher:
             self.notify()
             return
         if self._fed_n + len(items) > FED_MAX:
-            self._fed.clear()
-            self._fed_n = 0
+            self._drop_fed()
             self._unread = True
         else:
             self._fed.append((first_id, items))
@@ -428,8 +427,7 @@ class Publisher:
                 continue  # already read from the spool
             if first > last_read + 1:
                 self._unread = True  # something between: read it from the spool
-                fed.clear()
-                self._fed_n = 0
+                self._drop_fed()
                 break
             for k in range(last_read + 1 - first, len(items)):
                 topic, payload, qos, retain, kind = items[k]
