@@ -174,3 +174,27 @@ def test_live_and_replay_write_the_same_bytes(tmp_path):
         w.close()
         outs.append(path.read_bytes())
     assert outs[0] == outs[1] and b'"utc":"2025-12-02T05:43:' in outs[0]
+
+
+def test_fast_json_writer_is_the_encoders_text():
+    """to_json writes flat fields itself; its text must be exactly the standard library
+    encoder's (``json.dumps`` with compact separators, ASCII escapes, NaN refused) on the
+    rounded record, for every kind of value a record can hold."""
+    from hypothesis import given, settings, strategies as st
+
+    scalar = st.one_of(
+        st.floats(allow_nan=True, allow_infinity=True), st.integers(-2**70, 2**70),
+        st.booleans(), st.none(), st.text(max_size=12),
+    )
+    value = st.one_of(scalar, st.lists(scalar, max_size=3),
+                      st.dictionaries(st.sampled_from(["mean", "min_s", "x"]), scalar, max_size=3))
+    keys = st.sampled_from(["kind", "channel", "t", "t_end", "value", "dwell_s", "n", "reason",
+                            "ok", "ünïcode", "with \"quote\"", "x_s"])
+
+    @settings(max_examples=400, deadline=None)
+    @given(st.dictionaries(keys, value, max_size=8))
+    def check(rec):
+        expect = json.dumps(records.rounded(rec), separators=(",", ":"), allow_nan=False)
+        assert records.to_json(rec) == expect
+
+    check()

@@ -165,11 +165,12 @@ class EventLog:
         if self.fh is None:
             return
         line = records.to_json(rec) + "\n"
-        if self.rotating and self._due(len(line.encode("utf-8"))):
+        n = len(line)  # the JSON text is ASCII (escaped), so characters are bytes
+        if self.rotating and self._due(n):
             self.rotate()
         self.fh.write(line)
         self.written += 1
-        self.size += len(line.encode("utf-8"))
+        self.size += n
         if self.flush_each:
             self.fh.flush()
 
