@@ -6,7 +6,6 @@ writes it in TOML (``channel[1].band.low``), never as a traceback (DESIGN.md: ex
 
 from __future__ import annotations
 
-import difflib
 import re
 import typing
 from typing import Any, Iterable
@@ -122,6 +121,8 @@ def _describe(err: dict[str, Any]) -> str:
 
 def suggestion(name: str, known: Iterable[str]) -> str:
     """``"; did you mean 'width'?"`` for the nearest known key (difflib's ratio, cutoff 0.6), or ``""``."""
+    import difflib  # only for a mistyped key: not on every run's import path
+
     close = difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)
     return f"; did you mean {close[0]!r}?" if close else ""
 

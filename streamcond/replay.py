@@ -18,6 +18,7 @@ import numpy as np
 from . import records
 from .config import Config
 from .errors import InputError
+from .io import prefetch
 from .io.capture import is_capture, read_capture_blocks
 from .io.eventlog import EventLog
 from .io.lineparse import HOST_T, LineParser
@@ -85,12 +86,18 @@ def open_recording(
     host_time = capture and src.host_time
     if kind != "text":
         # a columnar capture, like a text one, always carries the host time as a last column
-        return parser, read_columnar_blocks(recording, parser, kind, capture), host_time
-    if capture:
+        blocks = read_columnar_blocks(recording, parser, kind, capture)
+    elif capture:
         # the rows always carry the recorded host time (a last column): the sample time when
         # the data has none, and the wall-clock stamp (``utc``) of the records either way
-        return parser, read_capture_blocks(recording, parser, True, block_bytes), host_time
-    return parser, read_blocks(recording, parser, block_bytes), host_time
+        blocks = read_capture_blocks(recording, parser, True, block_bytes)
+    else:
+        blocks = read_blocks(recording, parser, block_bytes)
+    if prefetch.worth_it(parser.reader, kind):
+        # pyarrow parses with the GIL released: the next block is read while this one is
+        # conditioned (the parser is driven by that one thread, so the records are the same)
+        blocks = prefetch.read_ahead(iter(blocks))
+    return parser, blocks, host_time
 
 
 class ReplayInterrupted(Exception):

@@ -272,3 +272,16 @@ def test_pipeline_reports_gaps_and_keeps_edge_times_increasing() -> None:
     # the dropped line (row 150) is inside a segment, so every change of v is one edge
     assert len(te) == np.count_nonzero(np.diff(v))
     assert np.all(np.diff(te) > 0)
+
+
+@pytest.mark.parametrize("n", [2, 3, 8, 17, 40])
+def test_period_is_numpys_median_of_the_first_steps(n):
+    """The nominal period is the median of the first ESTIMATE_N positive steps, exactly as
+    numpy.median computes it (reference: numpy.median), for odd and even counts."""
+    from streamcond.core.timebase import ESTIMATE_N
+
+    rng = np.random.default_rng(n)
+    t = np.cumsum(rng.uniform(0.5, 1.5, n + 1))
+    tb = Timebase(time_scale=1.0)
+    assert tb.estimate(t, final=True)
+    assert tb.period == float(np.median(np.diff(t)[:ESTIMATE_N]))
