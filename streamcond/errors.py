@@ -33,6 +33,9 @@ class StreamcondError(Exception):
         self.messages = [m if m.endswith((".", "?", "!")) else m + "." for m in messages]
         super().__init__("\n".join(self.messages))
 
+    def __reduce__(self):  # pickled whole (a replay's reader process sends its errors)
+        return (type(self), (self.messages,))
+
 
 class ConfigError(StreamcondError):
     """The config failed to load or validate."""

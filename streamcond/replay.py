@@ -93,9 +93,12 @@ def open_recording(
         blocks = read_capture_blocks(recording, parser, True, block_bytes)
     else:
         blocks = read_blocks(recording, parser, block_bytes)
-    if prefetch.worth_it(parser.reader, kind):
-        # pyarrow parses with the GIL released: the next block is read while this one is
-        # conditioned (the parser is driven by that one thread, so the records are the same)
+    # the next block is read and parsed on the other core while this one is conditioned
+    # (the parser is driven by that one reader alone, so the records are the same)
+    how = prefetch.choose(parser.reader, kind)
+    if how == "process":
+        blocks = prefetch.read_in_child(iter(blocks), parser)
+    elif how == "thread":
         blocks = prefetch.read_ahead(iter(blocks))
     return parser, blocks, host_time
 

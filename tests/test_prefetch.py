@@ -4,12 +4,18 @@ closes the source. The replay's records with read-ahead are the ones without it.
 
 from __future__ import annotations
 
+import json
+import os
+import subprocess
+import sys
 import threading
 import time
+from pathlib import Path
 
+import numpy as np
 import pytest
 
-from streamcond.io.prefetch import read_ahead
+from streamcond.io.prefetch import read_ahead, read_in_child
 
 
 def _threads() -> list[str]:
@@ -94,8 +100,6 @@ def test_replay_records_are_the_same_with_and_without_read_ahead(tmp_path, monke
     """The same recording and config, read with pyarrow's reader with read-ahead (the default)
     and with it switched off: the records are equal, field for field."""
     pytest.importorskip("pyarrow")
-    from pathlib import Path
-
     from streamcond import replay as replay_mod
     from streamcond.config import load_config
     from streamcond.io import prefetch
@@ -115,3 +119,145 @@ def test_replay_records_are_the_same_with_and_without_read_ahead(tmp_path, monke
     monkeypatch.setattr(prefetch, "worth_it", lambda reader, kind: False)
     without = run()
     assert with_ahead == without and len(with_ahead) > 10
+
+
+# -- the reader process --------------------------------------------------------------------------
+
+
+def _children() -> set[int]:
+    """This process's child pids (Linux /proc)."""
+    out: set[int] = set()
+    for task in Path("/proc/self/task").iterdir():
+        text = (task / "children").read_text().split()
+        out |= {int(x) for x in text}
+    return out
+
+
+needs_fork = pytest.mark.skipif(not hasattr(os, "fork") or not Path("/proc/self/task").exists(),
+                                reason="the reader process needs fork and /proc")
+
+
+class _Counter:
+    """A stand-in parser: the state the child sends along with every block."""
+
+    def __init__(self) -> None:
+        self.columns = None
+        self.header_line = None
+        self.lines = self.bad = self.before_header = self.repeated_headers = 0
+        self.examples: list[str] = []
+
+
+@needs_fork
+def test_child_blocks_arrive_in_order_with_the_parsers_state():
+    parser = _Counter()
+
+    def source():
+        parser.columns = ["t", "a"]
+        for i in range(50):
+            parser.lines += 10
+            if i % 7 == 0:
+                parser.bad += 1
+                parser.examples.append(f"line {i}")
+            yield np.full(1000, i, dtype=np.float64), os.getpid()
+
+    before = _children()
+    seen = []
+    for k, (arr, pid) in enumerate(read_in_child(source(), parser)):
+        assert pid != os.getpid()  # made in the child
+        assert (arr == k).all()
+        assert parser.lines == 10 * (k + 1)  # the state right after this block, as in-process
+        seen.append(k)
+    assert seen == list(range(50))
+    assert parser.columns == ["t", "a"] and parser.bad == 8 and len(parser.examples) == 8
+    assert _children() == before  # the child is gone and reaped
+
+
+@needs_fork
+def test_child_error_arrives_in_place_and_whole():
+    from streamcond.errors import InputError
+
+    def source():
+        yield 1
+        raise InputError(["The recording 'x' is odd", "and says so twice"])
+
+    got = []
+    with pytest.raises(InputError) as ei:
+        for item in read_in_child(source(), _Counter()):
+            got.append(item)
+    assert got == [1]
+    assert ei.value.messages == ["The recording 'x' is odd.", "and says so twice."]
+
+
+@needs_fork
+def test_stopping_the_child_early_leaves_no_process():
+    def source():
+        i = 0
+        while True:
+            yield np.zeros(1 << 16)  # larger than the pipe's buffer: the child blocks writing
+            i += 1
+
+    before = _children()
+    gen = read_in_child(source(), _Counter())
+    next(gen)
+    next(gen)
+    gen.close()
+    assert _children() == before
+
+
+MODES = ["off", "thread", "process"]
+
+
+def _cli_replay(tmp_path, rec, cfg, mode, reader="numpy"):
+    out = tmp_path / f"{rec.stem}.{mode}.{reader}.jsonl"
+    env = {**os.environ, "STREAMCOND_READ_AHEAD": mode, "STREAMCOND_CSV_READER": reader}
+    r = subprocess.run(
+        [sys.executable, "-m", "streamcond", "replay", str(rec), "-c", str(cfg), "--events",
+         str(out), "--force", "--no-progress"],
+        capture_output=True, text=True, env=env, timeout=300,
+    )
+    lines = out.read_text().splitlines() if out.exists() else []
+    summary = [json.loads(x) for x in lines if '"kind":"summary"' in x]
+    for s in summary:
+        s.pop("run_time_s")
+    body = [x for x in lines if '"kind":"summary"' not in x]
+    return r.returncode, r.stderr.replace(f".{mode}.", "."), body, summary
+
+
+@needs_fork
+@pytest.mark.parametrize("fmt", ["csv", "kv", "json"])
+def test_fuzzed_files_give_the_same_bytes_in_every_mode(fmt, tmp_path):
+    """The fuzzed recording of the reliability tests (bad lines of every kind, CRLF, blanks,
+    a repeated header), replayed by the command in a fresh process with reading ahead off, in a
+    thread and in a child process: the same events file byte for byte, the same bad-line count
+    and the same messages."""
+    from fuzz_lines import config, make
+
+    fz = make(fmt, 30_000, seed=5)
+    rec = tmp_path / f"dirty.{fmt}"
+    rec.write_bytes(fz.data)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(config(fmt))
+    runs = {m: _cli_replay(tmp_path, rec, cfg, m) for m in MODES}
+    code, err, body, summary = runs["off"]
+    assert code == 0, err
+    assert summary[0]["bad_lines"] == fz.bad and summary[0]["rows"] == fz.valid
+    for m in ("thread", "process"):
+        assert runs[m][0] == code, m
+        assert runs[m][2] == body, m
+        assert runs[m][3] == summary, m
+        # the warnings name the same lines (the closing line carries the run time)
+        assert [x for x in runs[m][1].splitlines() if "bad input" in x] == [
+            x for x in err.splitlines() if "bad input" in x], m
+
+
+@needs_fork
+def test_a_refused_recording_says_the_same_in_every_mode(tmp_path):
+    cfg = Path(__file__).resolve().parent.parent / "config" / "orchard_pump.toml"
+    junk = tmp_path / "junk.csv"
+    junk.write_bytes(bytes(range(256)) * 64)
+    nohead = tmp_path / "nohead.csv"
+    nohead.write_text("")
+    for rec in (junk, nohead):
+        got = {m: _cli_replay(tmp_path, rec, cfg, m)[:2] for m in MODES}
+        assert got["off"][0] == 2 and "Traceback" not in got["off"][1]
+        assert got["thread"] == got["off"] == got["process"], rec.name

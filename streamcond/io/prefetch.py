@@ -1,20 +1,31 @@
-"""Reading ahead: a block iterator run in a thread, one block ahead of its consumer.
+"""Reading ahead: the recording is read and parsed on the other core while the replay
+conditions the block before.
 
-pyarrow parses a CSV block, and reads a Parquet row group, with the GIL released, so while the
-replay conditions block k on the main thread the next block can be read and parsed on the other
-core. The iterator runs entirely in its own thread (the parser's state — line numbers, the
-partial last line, bad-line counts — is touched by that thread alone, in the same order as
-without it), and its items arrive in order, each exactly once, so the records are the same bit
-for bit. An exception raised while reading arrives where its block would have: after every block
-before it.
+Two ways, the same records bit for bit (the parser is driven by one reader alone, in the same
+order as without reading ahead; its items arrive in order, each once; an error arrives where
+its block would have — after every block before it):
 
-numpy's reader holds the GIL while it parses, so a thread would only add switching; the callers
-read ahead only with pyarrow's readers (:func:`worth_it`).
+* :func:`read_in_child` — a forked child process runs the block iterator and sends each block
+  (the parsed rows and the parser's counters) through a pipe. Any reader gains: numpy's
+  ``loadtxt`` and the kv/JSON line parsers hold the GIL, so in a thread they could not overlap
+  the conditioning. Used where ``fork`` is safe: POSIX, more than one usable core, and a
+  process with no other Python thread and no pyarrow thread pool yet (a fork copies only the
+  calling thread, so a lock another thread held would stay locked in the child).
+* :func:`read_ahead` — a thread, one block ahead. pyarrow parses a CSV block, and reads a
+  Parquet row group, with the GIL released, so a thread is enough for its readers.
+
+The pipe's own buffer is the back-pressure: the child parses at most one block beyond the one
+it is writing, so memory stays bounded by the block size.
 """
 
 from __future__ import annotations
 
+import os
+import pickle
 import queue
+import signal
+import struct
+import sys
 import threading
 from collections.abc import Iterator
 from typing import TypeVar
@@ -81,6 +92,120 @@ def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
     finally:
         stop.set()
         worker.join()
+
+
+#: The parser's state a consumer reads (the columns once the header came; the counts and the
+#: examples of bad lines at the end), sent with every block from the child.
+SYNCED = ("columns", "header_line", "lines", "bad", "before_header", "repeated_headers",
+          "examples")
+_LEN = struct.Struct("<Q")
+#: ``STREAMCOND_READ_AHEAD=off`` reads in the replay's own thread (tests compare); ``thread``
+#: never forks.
+ENV = "STREAMCOND_READ_AHEAD"
+
+
+def can_fork() -> bool:
+    """Is a reader child process safe and useful here? (See the module docstring.)"""
+    if not hasattr(os, "fork") or sys.platform == "darwin":
+        return False  # no fork, or (macOS) system libraries that are not fork-safe
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = os.cpu_count() or 1
+    return cores > 1 and threading.active_count() == 1 and "pyarrow" not in sys.modules
+
+
+def _send(fh, obj: object) -> None:
+    data = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+    fh.write(_LEN.pack(len(data)))
+    fh.write(data)
+
+
+def _recv(fh) -> object:
+    head = fh.read(_LEN.size)
+    if len(head) < _LEN.size:
+        raise EOFError
+    n = _LEN.unpack(head)[0]
+    data = fh.read(n)
+    if len(data) < n:
+        raise EOFError
+    return pickle.loads(data)
+
+
+def _child(blocks: Iterator[T], parser: object, w: int) -> None:
+    """The reader process: every item, then the end or the error; never returns."""
+    code = 0
+    try:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+        with open(w, "wb") as fh:
+            try:
+                for item in blocks:
+                    _send(fh, ("item", item, {k: getattr(parser, k) for k in SYNCED}))
+                _send(fh, ("end", None, {k: getattr(parser, k) for k in SYNCED}))
+            except BrokenPipeError:
+                raise
+            except BaseException as e:
+                try:
+                    _send(fh, ("error", e, None))
+                except (pickle.PicklingError, TypeError, AttributeError):
+                    _send(fh, ("error", RuntimeError(f"{type(e).__name__}: {e}"), None))
+    except BrokenPipeError:
+        pass  # the parent stopped reading (an early stop, an interrupt): nothing to say
+    except BaseException:
+        code = 1
+    finally:
+        os._exit(code)
+
+
+def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
+    """Yield the items of ``blocks``, produced by a forked child process; ``parser`` (the
+    parser ``blocks`` drives) is kept up to date here with the child's (:data:`SYNCED`)."""
+    r, w = os.pipe()
+    sys.stdout.flush()
+    sys.stderr.flush()
+    pid = os.fork()
+    if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
+        os.close(r)
+        _child(blocks, parser, w)
+    os.close(w)
+    ended = False
+    try:
+        with open(r, "rb") as fh:
+            while True:
+                try:
+                    what, item, state = _recv(fh)
+                except EOFError:
+                    raise RuntimeError("the recording's reader process ended unexpectedly") from None
+                if state is not None:
+                    for k, v in state.items():
+                        setattr(parser, k, v)
+                if what == "end":
+                    ended = True
+                    return
+                if what == "error":
+                    ended = True
+                    raise item  # type: ignore[misc]
+                yield item  # type: ignore[misc]
+    finally:
+        if not ended:
+            try:
+                os.kill(pid, signal.SIGTERM)
+            except OSError:
+                pass
+        try:
+            os.waitpid(pid, 0)
+        except OSError:
+            pass
+
+
+def choose(reader: str, kind: str) -> str:
+    """How to read ahead: ``"process"``, ``"thread"`` or ``"none"`` (see the module doc)."""
+    want = os.environ.get(ENV, "")
+    if want == "off":
+        return "none"
+    if want != "thread" and can_fork():
+        return "process"
+    return "thread" if worth_it(reader, kind) else "none"
 
 
 def worth_it(reader: str, kind: str) -> bool:
