@@ -113,28 +113,43 @@ band = {{ low = -0.1, high = 0.1 }}
 def _run_process(argv: list[str], env: dict[str, str] | None = None) -> tuple[float, float]:
     """Wall time (s) and peak RSS (MiB) of one child process.
 
-    The peak is the child's own high-water mark (``VmHWM`` in /proc), polled while it runs:
+    The peak is the high-water mark (``VmHWM`` in /proc) of the largest single process among
+    the child and its own children (a replay's reader process), polled while it runs:
     ``ru_maxrss`` would also count the parent's pages the child carried between fork and exec.
     """
     t0 = time.perf_counter()
     proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                             env=None if env is None else {**os.environ, **env})
-    status = Path(f"/proc/{proc.pid}/status")
     hwm_kib = 0
     while proc.poll() is None:
-        try:
-            for line in status.read_text().splitlines():
-                if line.startswith("VmHWM:"):
-                    hwm_kib = max(hwm_kib, int(line.split()[1]))
-                    break
-        except (OSError, ValueError):
-            pass
+        for pid in [proc.pid, *_children(proc.pid)]:
+            hwm_kib = max(hwm_kib, _hwm_kib(pid))
         time.sleep(0.01)
     wall = time.perf_counter() - t0
     err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
     if proc.returncode != 0:
         raise RuntimeError(f"{' '.join(argv)} failed: {err.strip()}")
     return wall, hwm_kib / 1024.0
+
+
+def _hwm_kib(pid: int) -> int:
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1])
+    except (OSError, ValueError):
+        pass
+    return 0
+
+
+def _children(pid: int) -> list[int]:
+    out: list[int] = []
+    try:
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            out += [int(x) for x in (task / "children").read_text().split()]
+    except (OSError, ValueError):
+        pass
+    return out
 
 
 def _compile_package() -> None:

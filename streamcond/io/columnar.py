@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
+from . import fastcsv
 from .lineparse import HOST_T, LineParser, Parsed
 
 #: schema metadata key and the values of the two layouts
@@ -75,7 +76,8 @@ class _Source:
 
     def batches(self, columns: list[str]) -> Iterator[Any]:
         if self.kind == "parquet":
-            yield from self._pf.iter_batches(batch_size=BATCH_ROWS, columns=columns)
+            yield from self._pf.iter_batches(batch_size=BATCH_ROWS, columns=columns,
+                                             use_threads=fastcsv.THREADS)
         else:
             for i in range(self._ipc.num_record_batches):
                 yield self._ipc.get_batch(i).select(columns)

@@ -37,6 +37,12 @@ import numpy as np
 ENV = "STREAMCOND_CSV_READER"
 
 
+#: Whether pyarrow may use its thread pool. Off in a replay's reader process
+#: (:mod:`streamcond.io.prefetch`): there the parse is off the critical path, and the pool's
+#: threads would take the core the conditioning runs on.
+THREADS = True
+
+
 def _arrow():
     try:
         import pyarrow as pa
@@ -117,7 +123,8 @@ class ArrowBlockReader:
         self.pa, self.pacsv = mods
         names = [f"c{i}" for i in range(ncols)]
         self.ncols = ncols
-        self.read_opts = self.pacsv.ReadOptions(column_names=names, block_size=1 << 22)
+        self.read_opts = self.pacsv.ReadOptions(column_names=names, block_size=1 << 22,
+                                                use_threads=THREADS)
         self.parse_opts = self.pacsv.ParseOptions(delimiter=",", quote_char=False,
                                                   ignore_empty_lines=True)
         self.conv_opts = self.pacsv.ConvertOptions(

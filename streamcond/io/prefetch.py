@@ -137,6 +137,9 @@ def _child(blocks: Iterator[T], parser: object, w: int) -> None:
     code = 0
     try:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+        from . import fastcsv
+
+        fastcsv.THREADS = False  # one core parses, the other conditions
         with open(w, "wb") as fh:
             try:
                 for item in blocks:
