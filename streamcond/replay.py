@@ -148,11 +148,12 @@ def run_replay(
     ``chunk`` feeds the pipeline that many rows at a time (any value gives the same records);
     ``speed`` paces the replay by sample time (1.0 = real time, 10 = ten times faster).
     """
-    from .core.pipeline import Pipeline
     from .validate import validate
 
     validate(cfg, files=False)  # a replay opens no MQTT files
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
+    # imported after the reader has started: its first block is parsed meanwhile
+    from .core.pipeline import Pipeline
     # rows with the host receive time as a last column: a text capture always (see
     # open_recording), any other capture when that time is the sample time
     with_host_column = host_time or is_capture(recording)

@@ -202,6 +202,17 @@ def test_stopping_the_child_early_leaves_no_process():
     next(gen)
     gen.close()
     assert _children() == before
+    # a reader that is dropped without being read (the replay failed before its first block)
+    import gc
+
+    gen = read_in_child(source(), _Counter())
+    del gen
+    gc.collect()
+    assert _children() == before
+    gen = read_ahead(source())
+    del gen
+    gc.collect()
+    assert not _threads()
 
 
 MODES = ["off", "thread", "process"]

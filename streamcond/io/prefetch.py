@@ -47,7 +47,8 @@ class _Failed:
 def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
     """Yield the items of ``blocks``, produced by a thread that stays ``depth`` items ahead.
 
-    Closing the returned generator (or an exception in the consumer) stops the thread at its
+    The thread starts now, so the first block is read while the caller gets ready. Closing the
+    returned generator (or an exception in the consumer, or dropping it) stops the thread at its
     next item and closes ``blocks``.
     """
     q: queue.Queue = queue.Queue(maxsize=depth)
@@ -81,17 +82,24 @@ def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
 
     worker = threading.Thread(target=run, name="streamcond-read-ahead", daemon=True)
     worker.start()
-    try:
-        while True:
-            item = q.get()
-            if item is _END:
-                return
-            if isinstance(item, _Failed):
-                raise item.exc
-            yield item  # type: ignore[misc]
-    finally:
-        stop.set()
-        worker.join()
+
+    def consume() -> Iterator[T]:
+        try:
+            yield None  # type: ignore[misc]  # primed below: the finally now always runs
+            while True:
+                item = q.get()
+                if item is _END:
+                    return
+                if isinstance(item, _Failed):
+                    raise item.exc
+                yield item  # type: ignore[misc]
+        finally:
+            stop.set()
+            worker.join()
+
+    gen = consume()
+    next(gen)
+    return gen
 
 
 #: The parser's state a consumer reads (the columns once the header came; the counts and the
@@ -161,8 +169,9 @@ def _child(blocks: Iterator[T], parser: object, w: int) -> None:
 
 
 def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
-    """Yield the items of ``blocks``, produced by a forked child process; ``parser`` (the
-    parser ``blocks`` drives) is kept up to date here with the child's (:data:`SYNCED`)."""
+    """Yield the items of ``blocks``, produced by a child process forked now (so the first
+    block is parsed while the caller gets ready); ``parser`` (the parser ``blocks`` drives) is
+    kept up to date here with the child's (:data:`SYNCED`)."""
     r, w = os.pipe()
     sys.stdout.flush()
     sys.stderr.flush()
@@ -171,9 +180,16 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
         os.close(r)
         _child(blocks, parser, w)
     os.close(w)
+    gen = _from_child(open(r, "rb"), pid, parser)
+    next(gen)
+    return gen
+
+
+def _from_child(fh, pid: int, parser: object) -> Iterator[T]:
     ended = False
     try:
-        with open(r, "rb") as fh:
+        yield None  # type: ignore[misc]  # primed by read_in_child: the finally now always runs
+        with fh:
             while True:
                 try:
                     what, item, state = _recv(fh)
@@ -190,6 +206,7 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
                     raise item  # type: ignore[misc]
                 yield item  # type: ignore[misc]
     finally:
+        fh.close()
         if not ended:
             try:
                 os.kill(pid, signal.SIGTERM)
