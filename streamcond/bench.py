@@ -204,7 +204,7 @@ def replay_figures(rows: int, repeat: int, workdir: Path) -> dict[str, Any]:
         parquet = workdir / "bench.parquet"
         convert(load_config(cfg), csv, parquet, force=True)
         sides += [
-            ("replay_fast", replay_of(csv), {"STREAMCOND_CSV_READER": "pyarrow"}),
+            ("replay_fast", replay_of(csv), {"STREAMCOND_CSV_READER": "auto"}),  # as installed
             ("pyarrow_csv", [py, "-c", "import sys, pyarrow.csv as c; c.read_csv(sys.argv[1])",
                              str(csv)], None),
             ("replay_parquet", replay_of(parquet), None),

@@ -78,7 +78,7 @@ def choose(name: str | None = None) -> str:
         return "auto" if _have_arrow() else "numpy"
     if want not in ("numpy", "pyarrow"):
         raise ValueError(f"unknown CSV reader {want!r} (numpy or pyarrow)")
-    if want == "pyarrow" and _arrow() is None:
+    if want == "pyarrow" and not _have_arrow():  # found, not imported: a reader child may use it
         raise ValueError("the pyarrow CSV reader is not installed (pip install 'streamcond[fast]')")
     return want
 

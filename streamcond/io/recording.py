@@ -17,6 +17,9 @@ from ..errors import InputError
 from .lineparse import LineParser, Parsed
 
 DEFAULT_BLOCK_BYTES = 1 << 22
+#: The first block is at most this large, so that conditioning starts after a short parse
+#: while a reader process or thread reads on (the records do not depend on block sizes).
+FIRST_BLOCK_BYTES = 1 << 18
 #: How much of a file's start is looked at to tell text from binary.
 SNIFF_BYTES = 1 << 16
 PARQUET_MAGIC = b"PAR1"
@@ -80,9 +83,11 @@ def read_blocks(
     done = 0
     rows = 0
     with fh:
+        want = min(block_bytes, FIRST_BLOCK_BYTES)
         while True:
             try:
-                data = fh.read(block_bytes)
+                data = fh.read(want)
+                want = block_bytes
             except OSError as e:
                 raise InputError(f"Reading {str(p)!r} failed: {e.strerror}") from None
             if not data:
