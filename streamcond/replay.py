@@ -7,6 +7,7 @@ JSON-lines writer, plus pacing (``--speed``), progress and the golden-file compa
 from __future__ import annotations
 
 import logging
+import os
 import sys
 import time
 from dataclasses import dataclass, field
@@ -95,7 +96,7 @@ def open_recording(
         blocks = read_blocks(recording, parser, block_bytes)
     # the next block is read and parsed on the other core while this one is conditioned
     # (the parser is driven by that one reader alone, so the records are the same)
-    how = prefetch.choose(parser.reader, kind)
+    how = prefetch.choose(parser.reader, kind, os.path.getsize(recording))
     if how == "process":
         blocks = prefetch.read_in_child(iter(blocks), parser)
     elif how == "thread":
@@ -152,6 +153,23 @@ def run_replay(
 
     validate(cfg, files=False)  # a replay opens no MQTT files
     parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
+    try:
+        return _replay(cfg, recording, parser, blocks, host_time, sink, chunk=chunk,
+                       speed=speed, keep_records=keep_records, progress=progress,
+                       sleep=sleep, clock=clock)
+    finally:
+        # a reader process or thread stops now, whatever ended the replay
+        close = getattr(blocks, "close", None)
+        if close is not None:
+            close()
+
+
+def _replay(
+    cfg: Config, recording: str | Path, parser: LineParser, blocks: Iterable[Any],
+    host_time: bool, sink: Callable[[dict[str, Any]], None] | None, *, chunk: int | None,
+    speed: float | None, keep_records: bool, progress: Any,
+    sleep: Callable[[float], None], clock: Callable[[], float],
+) -> ReplayResult:
     # imported after the reader has started: its first block is parsed meanwhile
     from .core.pipeline import Pipeline
     # rows with the host receive time as a last column: a text capture always (see

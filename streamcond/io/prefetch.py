@@ -107,8 +107,8 @@ def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
 SYNCED = ("columns", "header_line", "lines", "bad", "before_header", "repeated_headers",
           "examples")
 _LEN = struct.Struct("<Q")
-#: ``STREAMCOND_READ_AHEAD=off`` reads in the replay's own thread (tests compare); ``thread``
-#: never forks.
+#: ``STREAMCOND_READ_AHEAD``: ``off`` reads in the replay's own thread, ``thread`` never
+#: forks, ``process`` always does (tests compare them).
 ENV = "STREAMCOND_READ_AHEAD"
 
 
@@ -218,12 +218,25 @@ def _from_child(fh, pid: int, parser: object) -> Iterator[T]:
             pass
 
 
-def choose(reader: str, kind: str) -> str:
-    """How to read ahead: ``"process"``, ``"thread"`` or ``"none"`` (see the module doc)."""
+#: Recordings smaller than this are read in the replay's own thread: one or two blocks leave
+#: nothing to overlap, and a test suite replays thousands of small files.
+MIN_BYTES = 1 << 20
+
+
+def choose(reader: str, kind: str, size: int) -> str:
+    """How to read ahead a recording of ``size`` bytes: ``"process"``, ``"thread"`` or
+    ``"none"`` (see the module docstring). ``STREAMCOND_READ_AHEAD`` = ``off``, ``thread`` or
+    ``process`` forces one (``process`` still needs ``fork``)."""
     want = os.environ.get(ENV, "")
     if want == "off":
         return "none"
-    if want != "thread" and can_fork():
+    if want == "thread":
+        return "thread"
+    if want == "process" and hasattr(os, "fork"):
+        return "process"
+    if size < MIN_BYTES:
+        return "none"
+    if can_fork():
         return "process"
     return "thread" if worth_it(reader, kind) else "none"
 
