@@ -40,6 +40,10 @@ TIME_DECIMALS = 9
 SIGNIFICANT = 10
 
 
+#: printf's %g to SIGNIFICANT digits (a constant format: a nested f-string spec is rebuilt on
+#: every call, a third of the rounding's cost).
+_SIG_FORMAT = f"%.{SIGNIFICANT}g"
+
 _TIME_KEYS: dict[str, bool] = {}
 
 
@@ -57,7 +61,7 @@ def _round_value(v: float, is_time: bool) -> float | None:
         return round(v, TIME_DECIMALS)
     if v == 0.0:
         return 0.0
-    r = float(f"{v:.{SIGNIFICANT}g}")
+    r = float(_SIG_FORMAT % v)
     return r if r - r == 0.0 else v  # within 1e-10 of the largest double, rounding overflows
 
 
