@@ -161,13 +161,16 @@ class Pipeline:
         chans = self.channels
         assert chans is not None
         info = self._holdable()
-        lo_v, hi_v = self._column_ranges(rows)
         t_last = float(t[-1])
-        out = []
-        for ci, ch in enumerate(chans):
-            out.append(info[1][ci] and self._quiet(ch, lo_v[ci], hi_v[ci], t_last,
-                                                   self._pending_n[ci] + t.size))
-        return out
+        # the state tests first: in a long block (a replay's) a stats window always ends, and
+        # the value ranges need not be computed at all
+        maybe = [info[1][ci] and self._quiet(ch, t_last, self._pending_n[ci] + t.size)
+                 for ci, ch in enumerate(chans)]
+        if not any(maybe):
+            return maybe
+        lo_v, hi_v = self._column_ranges(rows)
+        return [m and _keeps_side(ch, ch.dwell.level, lo_v[ci], hi_v[ci])
+                for ci, (m, ch) in enumerate(zip(maybe, chans))]
 
     def _holdable(self) -> tuple:
         """(channels, per channel: no prefilter and no fault limits), cached per channel list:
@@ -190,7 +193,10 @@ class Pipeline:
         return sub.min(axis=0).tolist(), sub.max(axis=0).tolist()
 
     @staticmethod
-    def _quiet(ch: ChannelConditioner, a: float, b: float, t_last: float, n_new: int) -> bool:
+    def _quiet(ch: ChannelConditioner, t_last: float, n_new: int) -> bool:
+        """The state half of the test: no edge pending, no fault, a known level, no stats
+        window ending and no noise estimate due in these samples (the values are tested by
+        :func:`_keeps_side`)."""
         st = ch.dwell
         level = st.level
         if st.pend_class != -1 or ch.in_fault or not (level == 0 or level == 1):
@@ -204,9 +210,7 @@ class Pipeline:
         n0 = nt.samples_seen
         wn, every = nt.window_n, nt.update_every
         first = wn if n0 < wn else wn + ((n0 - wn) // every + 1) * every
-        if first <= n0 + n_new:
-            return False  # a noise estimate is due
-        return _keeps_side(ch, level, a, b)
+        return first > n0 + n_new  # else a noise estimate is due
 
     def _drain(self) -> None:
         """Condition every channel's deferred samples now (before state is read or handed
