@@ -46,7 +46,7 @@ from typing import Iterable
 
 import numpy as np
 
-from . import fastcsv
+from . import fastcsv, linetemplate
 
 log = logging.getLogger(__name__)
 
@@ -103,6 +103,13 @@ _JSON = json.JSONDecoder(
 )
 
 
+#: The members of a JSON line in order, numbers as the careful parser reads them (for
+#: :func:`streamcond.io.linetemplate.json_template`).
+_JSON_PAIRS = json.JSONDecoder(parse_int=float, object_pairs_hook=list)
+#: Accepted kv/JSON lines not looked at for a template after a layout without one.
+_RELEARN_AFTER = 1000
+
+
 class LineParser:
     """Splits a byte stream into lines and parses them into numeric rows."""
 
@@ -127,6 +134,8 @@ class LineParser:
             self.columns = self.needed or self._given_columns
         self._block_reader = None
         self._line_re: re.Pattern[bytes] | None = None  # a whole numeric CSV line of ncols
+        self._template: linetemplate.Template | None = None  # kv/json: the last line's layout
+        self._learn_wait = 0
         self._tail = b""
         self._skip_tail = False  # inside an over-long line: drop until its end
         self.lines = 0  # lines seen (for line numbers in messages)
@@ -424,12 +433,14 @@ class LineParser:
 
     # -- kv and json ------------------------------------------------------------------------
     def _parse_records(self, body: bytes) -> Parsed:
-        """``kv`` and ``json`` lines: a Python parse per line (these come at serial rates)."""
+        """``kv`` and ``json`` lines: a Python parse per line, through the last line's template
+        where it matches (:mod:`streamcond.io.linetemplate`)."""
         cols = self.columns or []
         out = self._empty()
         rows: list[list[float]] = []
         numbers: list[int] = []
         kv = self.fmt == "kv"
+        tmpl = self._template
         for raw in body.split(b"\n")[:-1]:
             self.lines += 1
             content = raw[:-1] if raw.endswith(b"\r") else raw
@@ -439,18 +450,46 @@ class LineParser:
             s = content.strip(b" \t")
             if not s:
                 continue
+            if tmpl is not None:
+                # the layout of an earlier line (streamcond.io.linetemplate): the same values
+                # the careful parser would take, at half its cost
+                m = tmpl[0](s)
+                if m is not None:
+                    g = m.groups()
+                    row = [float(g[i - 1]) for i in tmpl[1]]
+                    if all(math.isfinite(v) for v in row):
+                        rows.append(row)
+                        numbers.append(self.lines)
+                        continue
             try:
                 row = _kv_row(s, cols) if kv else _json_row(s, cols)
             except _BadLine as e:
                 self._note_bad(out, self.lines, str(e))
                 continue
+            tmpl = self._learn(s, cols, kv) or tmpl
             if not all(math.isfinite(v) for v in row):
                 self._note_bad(out, self.lines, "NaN or infinite number")
                 continue
             rows.append(row)
             numbers.append(self.lines)
+        self._template = tmpl
         arr = np.array(rows, dtype=np.float64).reshape(len(rows), len(cols))
         return Parsed(arr, out.bad, out.examples, np.asarray(numbers, dtype=np.int64))
+
+    def _learn(self, s: bytes, cols: list[str], kv: bool) -> linetemplate.Template | None:
+        """The template of a line the careful parser accepted and the template (if any)
+        missed; after a layout without one (a JSON member that is not a number), the next
+        :data:`_RELEARN_AFTER` accepted lines are not looked at."""
+        if self._learn_wait:
+            self._learn_wait -= 1
+            return None
+        if kv:
+            found = linetemplate.kv_template(s, cols)
+        else:
+            found = linetemplate.json_template(_JSON_PAIRS.decode(s.decode("utf-8")), cols)
+        if found is None:
+            self._learn_wait = _RELEARN_AFTER
+        return found
 
 
 def _kv_row(s: bytes, cols: list[str]) -> list[float]:
