@@ -24,6 +24,11 @@ def _run_briefly(cfg: Path) -> subprocess.CompletedProcess[str]:
         pytest.fail("the daemon started instead of refusing the events path")
 
 
+def _check(cfg: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "streamcond", "check", "-c", str(cfg)], cwd=ROOT,
+                          capture_output=True, text=True, timeout=60)
+
+
 @pytest.mark.parametrize("target,label", [("config", "config"), ("spool", "spool")])
 def test_events_onto_the_config_or_the_spool_is_refused_at_start(tmp_path, target, label):
     pty = Pty(tmp_path / "ttyE")
@@ -38,6 +43,10 @@ def test_events_onto_the_config_or_the_spool_is_refused_at_start(tmp_path, targe
         assert label in r.stderr and "refusing to write over" in r.stderr
         assert "Traceback" not in r.stderr
         assert cfg.read_text() == text  # the config is untouched
+        # `check` says the same before the config is ever deployed
+        c = _check(cfg)
+        assert c.returncode == 2 and label in c.stderr and "refusing to write over" in c.stderr
+        assert "Traceback" not in c.stderr
     finally:
         pty.unplug()
 
@@ -53,6 +62,8 @@ def test_events_rotating_into_the_config_is_refused_at_start(tmp_path):
         r = _run_briefly(cfg)
         assert r.returncode == 2 and "rotates into" in r.stderr, r.stderr
         assert cfg.read_text() == text
+        c = _check(cfg)
+        assert c.returncode == 2 and "rotates into" in c.stderr, c.stderr
     finally:
         pty.unplug()
 

@@ -51,12 +51,7 @@ def check_output(
     (by resolved path, or the same file under another name) is refused whatever the mode.
     """
     p = Path(target)
-    for label, inp in inputs:
-        if inp is not None and _same(p, Path(inp)):
-            raise InputError(
-                f"The {what} {target!r} is the {label}; refusing to write over an input "
-                f"(choose another path)"
-            )
+    _refuse_inputs(p, target, what, inputs)
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise InputError(
@@ -76,6 +71,29 @@ def check_output(
             f"The {what} {target!r} cannot be written: the directory {str(parent)!r} is not writable"
         )
     return p
+
+
+def _refuse_inputs(p: Path, target: str, what: str,
+                   inputs: Iterable[tuple[str, str | Path | None]]) -> None:
+    for label, inp in inputs:
+        if inp is not None and _same(p, Path(inp)):
+            raise InputError(
+                f"The {what} {target!r} is the {label}; refusing to write over an input "
+                f"(choose another path)"
+            )
+
+
+def check_inputs(output: Any, inputs: Iterable[tuple[str, str | Path | None]]) -> None:
+    """``[output]``'s events path, and with rotation every rotated name, against the files it
+    must never write over — without opening anything (``check``: the daemon refuses the same
+    at start, and its directory may only exist on the station)."""
+    if not output.events or output.events == "-":
+        return
+    inputs = list(inputs)
+    _refuse_inputs(Path(output.events), output.events, "events file", inputs)
+    rot = getattr(output, "rotate", None)
+    if rot is not None:
+        _check_rotated_names(Path(output.events), max(int(rot.keep), 1), inputs)
 
 
 def _check_rotated_names(p: Path, keep: int, inputs: list[tuple[str, str | Path | None]]) -> None:
