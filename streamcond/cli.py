@@ -560,11 +560,10 @@ def _check(args: argparse.Namespace) -> int:
 
     cfg = load_config(args.config)
     validate(cfg)  # what only building the channels or opening the files shows
-    from .daemon import store_path
     from .io.eventlog import check_inputs
 
     # the events file the daemon would refuse to open: the config, the spool, or a rotated name
-    check_inputs(cfg.output, [("config", args.config), ("spool/state file", store_path(cfg))])
+    check_inputs(cfg.output, [("config", args.config), ("spool/state file", cfg.output.store_path)])
     print(describe_config(cfg, as_json=args.json))
     return EXIT_OK
 

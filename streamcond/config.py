@@ -372,6 +372,12 @@ class Output(_Model):
     state_path: str = "state/streamcond.sqlite"
     mqtt: Mqtt | None = None
 
+    @property
+    def store_path(self) -> Path:
+        """Where the live daemon keeps its spool and channel state (one SQLite file): the MQTT
+        spool when it publishes, else ``state_path``."""
+        return Path(self.mqtt.spool_path if self.mqtt is not None else self.state_path)
+
 
 class Metrics(_Model):
     """The optional Prometheus endpoint (streamcond.metrics)."""

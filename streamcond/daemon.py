@@ -66,9 +66,7 @@ TICK_S = 1.0
 
 def store_path(cfg: Config) -> Path:
     """Where the spool and the channel state live (one SQLite file)."""
-    if cfg.output.mqtt is not None:
-        return Path(cfg.output.mqtt.spool_path)
-    return Path(cfg.output.state_path)
+    return cfg.output.store_path
 
 
 class Daemon:
