@@ -168,11 +168,27 @@ def _child(blocks: Iterator[T], parser: object, w: int) -> None:
         os._exit(code)
 
 
+#: The pipe's buffer, where the system allows it (Linux: up to /proc/sys/fs/pipe-max-size,
+#: 1 MiB by default): a block of rows crosses in 4 writes instead of 64, with as few switches
+#: between the two processes.
+PIPE_BYTES = 1 << 20
+
+
+def _widen(fd: int) -> None:
+    try:
+        import fcntl
+
+        fcntl.fcntl(fd, fcntl.F_SETPIPE_SZ, PIPE_BYTES)
+    except (ImportError, AttributeError, OSError):
+        pass  # not Linux, or a lower limit: the default buffer works, a little slower
+
+
 def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
     """Yield the items of ``blocks``, produced by a child process forked now (so the first
     block is parsed while the caller gets ready); ``parser`` (the parser ``blocks`` drives) is
     kept up to date here with the child's (:data:`SYNCED`)."""
     r, w = os.pipe()
+    _widen(w)
     sys.stdout.flush()
     sys.stderr.flush()
     pid = os.fork()
