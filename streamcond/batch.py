@@ -276,11 +276,14 @@ def compare_recording(
     ``moved``, ``missing`` and ``added`` are the golden comparison's moved, missing and
     unexpected edges with A as the expected side (:func:`streamcond.golden.diff_edges`).
     """
-    from .replay import run_replay
+    from .replay import run_replay, run_replays, same_reading
 
     ta, tb = Tally(), Tally()
-    ra = run_replay(cfg_a, recording, ta, block_bytes=block_bytes)
-    run_replay(cfg_b, recording, tb, block_bytes=block_bytes)
+    if same_reading(cfg_a, cfg_b):  # the usual case (another band, filter or dwell): one read
+        ra = run_replays([cfg_a, cfg_b], recording, [ta, tb], block_bytes=block_bytes)[0]
+    else:
+        ra = run_replay(cfg_a, recording, ta, block_bytes=block_bytes)
+        run_replay(cfg_b, recording, tb, block_bytes=block_bytes)
     diffs = {d.channel: d for d in diff_edges(ta.edges, tb.edges, tolerance)}
     names = list(dict.fromkeys([c.name for c in cfg_a.channel] + [c.name for c in cfg_b.channel]))
     channels: dict[str, dict[str, Any]] = {}

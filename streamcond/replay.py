@@ -149,14 +149,52 @@ def run_replay(
     ``chunk`` feeds the pipeline that many rows at a time (any value gives the same records);
     ``speed`` paces the replay by sample time (1.0 = real time, 10 = ten times faster).
     """
+    return run_replays([cfg], recording, [sink], chunk=chunk, speed=speed,
+                       keep_records=keep_records, progress=progress, block_bytes=block_bytes,
+                       sleep=sleep, clock=clock)[0]
+
+
+def same_reading(a: Config, b: Config) -> bool:
+    """Do two configs read a recording the same way (one read can serve both replays)? The
+    same ``[source]`` and the same columns read (a NaN in a read column makes a line bad)."""
+    return a.source == b.source and needed_columns(a) == needed_columns(b)
+
+
+def run_replays(
+    cfgs: list[Config],
+    recording: str | Path,
+    sinks: list[Callable[[dict[str, Any]], None] | None],
+    *,
+    chunk: int | None = None,
+    speed: float | None = None,
+    keep_records: bool = False,
+    progress: Any = None,
+    block_bytes: int = DEFAULT_BLOCK_BYTES,
+    sleep: Callable[[float], None] = time.sleep,
+    clock: Callable[[], float] = time.monotonic,
+) -> list[ReplayResult]:
+    """Replay ``recording`` once through one pipeline per config (configs that read it the same
+    way, :func:`same_reading`): the file is read and parsed once, and each config's records
+    go to its sink, exactly as in a replay of its own."""
     from .validate import validate
 
-    validate(cfg, files=False)  # a replay opens no MQTT files
-    parser, blocks, host_time = open_recording(cfg, recording, block_bytes)
+    if any(not same_reading(cfgs[0], c) for c in cfgs[1:]):
+        raise ValueError("run_replays needs configs that read the recording the same way")
+    for cfg in cfgs:
+        validate(cfg, files=False)  # a replay opens no MQTT files
+    parser, blocks, host_time = open_recording(cfgs[0], recording, block_bytes)
     try:
-        return _replay(cfg, recording, parser, blocks, host_time, sink, chunk=chunk,
-                       speed=speed, keep_records=keep_records, progress=progress,
-                       sleep=sleep, clock=clock)
+        # imported after the reader has started: its first block is parsed meanwhile
+        from .core.pipeline import Pipeline
+
+        # rows with the host receive time as a last column: a text capture always (see
+        # open_recording), any other capture when that time is the sample time
+        host_column = host_time or is_capture(recording)
+        runs = [_Run(cfg, sink, keep_records, host_time, host_column, Pipeline)
+                for cfg, sink in zip(cfgs, sinks)]
+        _drive(runs, recording, parser, blocks, chunk=chunk, speed=speed, progress=progress,
+               sleep=sleep, clock=clock)
+        return [run.res for run in runs]
     finally:
         # a reader process or thread stops now, whatever ended the replay
         close = getattr(blocks, "close", None)
@@ -164,107 +202,127 @@ def run_replay(
             close()
 
 
-def _replay(
-    cfg: Config, recording: str | Path, parser: LineParser, blocks: Iterable[Any],
-    host_time: bool, sink: Callable[[dict[str, Any]], None] | None, *, chunk: int | None,
-    speed: float | None, keep_records: bool, progress: Any,
+class _Run:
+    """One config's pipeline, result and sink in a replay."""
+
+    def __init__(self, cfg: Config, sink: Callable[[dict[str, Any]], None] | None,
+                 keep_records: bool, host_time: bool, host_column: bool, pipeline: Any) -> None:
+        self.cfg, self.sink, self.keep = cfg, sink, keep_records
+        self.host_time, self.host_column, self._pipeline = host_time, host_column, pipeline
+        self.pipe: Any = None
+        self.res = ReplayResult()
+
+    def start(self, columns: list[str]) -> None:
+        check_columns(self.cfg, columns)
+        cols = columns + [HOST_T] if self.host_column else columns
+        self.pipe = self._pipeline(self.cfg, cols, host_time=self.host_time)
+
+    def emit(self, recs: list[dict[str, Any]]) -> None:
+        sink, keep = self.sink, self.keep
+        for r in recs:
+            if sink is not None:
+                sink(r)
+            if keep:
+                self.res.records.append(r)
+
+    def interrupted(self) -> float:
+        """Ctrl-C: the partial windows, then an ``interrupted`` record; returns its time."""
+        pipe = self.pipe
+        t_stop = pipe.last_t if pipe is not None else float("nan")
+        if pipe is not None:
+            try:
+                self.emit(pipe.flush())
+            except Exception as e:  # stopped mid-block: the closing record matters more
+                log.debug("no partial windows after the interrupt: %s", e)
+        stop = records.interrupted(t_stop)
+        if pipe is not None and pipe.host_col is not None:
+            records.with_utc(stop, pipe.last_host_t)
+        self.emit([stop])
+        return t_stop
+
+    def finish(self, parser: LineParser, wall0: float) -> None:
+        pipe, res = self.pipe, self.res
+        self.emit(pipe.finish())
+        res.bad_lines = parser.bad  # the parser counts every bad line it skipped
+        res.examples = list(parser.examples)
+        res.summary = records.summary(
+            pipe.last_t,
+            rows=res.rows,
+            samples=pipe.samples,
+            bad_lines=res.bad_lines,
+            bad_line_examples=res.examples,
+            gaps=pipe.gaps,
+            dropped=pipe.timebase.dropped,
+            sample_rate_hz=pipe.sample_rate_hz,
+            edges=pipe.edges_by_channel(),
+            totals=pipe.totals(),
+            run_time_s=round(time.monotonic() - wall0, 6),
+        )
+        if pipe.host_col is not None:
+            records.with_utc(res.summary, pipe.last_host_t)
+        self.emit([res.summary])
+
+
+def _drive(
+    runs: list[_Run], recording: str | Path, parser: LineParser, blocks: Iterable[Any], *,
+    chunk: int | None, speed: float | None, progress: Any,
     sleep: Callable[[float], None], clock: Callable[[], float],
-) -> ReplayResult:
-    # imported after the reader has started: its first block is parsed meanwhile
-    from .core.pipeline import Pipeline
-    # rows with the host receive time as a last column: a text capture always (see
-    # open_recording), any other capture when that time is the sample time
-    with_host_column = host_time or is_capture(recording)
-
-    def new_pipeline(columns: list[str]) -> Pipeline:
-        check_columns(cfg, columns)
-        return Pipeline(cfg, columns + [HOST_T] if with_host_column else columns, host_time=host_time)
-
-    pipe: Pipeline | None = None
-    res = ReplayResult()
+) -> None:
+    """The replay loop: every block to every run, paced and reported by the first."""
+    lead = runs[0]
     wall0 = time.monotonic()
     t_first: float | None = None
     pace0 = 0.0
     if speed is not None and chunk is None:
         chunk = 32  # pace in small steps so a live consumer sees a steady stream
-
-    def emit(recs: list[dict[str, Any]]) -> None:
-        for r in recs:
-            if sink is not None:
-                sink(r)
-            if keep_records:
-                res.records.append(r)
-
     done_before = 0
     try:
         for parsed, done, size in blocks:
             if parsed.examples:
                 for msg in parsed.examples:
                     log.warning("bad input skipped: %s", msg)
-            if pipe is None:
+            if lead.pipe is None:
                 if parser.columns is None:
                     continue
-                pipe = new_pipeline(parser.columns)
+                for run in runs:
+                    run.start(parser.columns)
             n_block = max(parsed.rows.shape[0], 1)
             in_block = 0
             for piece in _chunks(parsed.rows, chunk):
-                res.rows += piece.shape[0]
                 in_block += piece.shape[0]
-                emit(pipe.process(piece))
-                if speed is not None and np.isfinite(pipe.last_t):
+                for run in runs:
+                    run.res.rows += piece.shape[0]
+                    run.emit(run.pipe.process(piece))
+                last_t = lead.pipe.last_t
+                if speed is not None and np.isfinite(last_t):
                     if t_first is None:
-                        t_first = pipe.last_t
+                        t_first = last_t
                         pace0 = clock()
-                    wait = (pipe.last_t - t_first) / speed - (clock() - pace0)
+                    wait = (last_t - t_first) / speed - (clock() - pace0)
                     if wait > 0:
                         sleep(wait)
                 if progress is not None:
                     # driven by sample time, after every piece; the bytes done inside a block
                     # are estimated from the rows done (the block is parsed as a whole)
                     est = done_before + (done - done_before) * in_block / n_block
-                    progress.update(int(est), res.rows, pipe.last_t)
+                    progress.update(int(est), lead.res.rows, last_t)
             done_before = done
             if progress is not None:
-                progress.update(done, res.rows, pipe.last_t if pipe is not None else None)
+                progress.update(done, lead.res.rows,
+                                lead.pipe.last_t if lead.pipe is not None else None)
     except KeyboardInterrupt:
-        t_stop = pipe.last_t if pipe is not None else float("nan")
-        if pipe is not None:
-            try:
-                emit(pipe.flush())
-            except Exception as e:  # stopped mid-block: the closing record matters more
-                log.debug("no partial windows after the interrupt: %s", e)
-        stop = records.interrupted(t_stop)
-        if pipe is not None and pipe.host_col is not None:
-            records.with_utc(stop, pipe.last_host_t)
-        emit([stop])
-        raise ReplayInterrupted(t_stop, res.rows) from None
-    if pipe is None:
+        t_stop = [run.interrupted() for run in runs][0]
+        raise ReplayInterrupted(t_stop, lead.res.rows) from None
+    if lead.pipe is None:
         if parser.columns is None:
             raise InputError(f"The recording {str(recording)!r} holds no data lines")
-        pipe = new_pipeline(parser.columns)
-    emit(pipe.finish())
+        for run in runs:
+            run.start(parser.columns)
     if parser.bad > len(parser.examples):
         log.warning("%d bad lines skipped in all (the first %d are listed above)",
                     parser.bad, len(parser.examples))
-    res.bad_lines = parser.bad  # the parser counts every bad line it skipped
-    res.examples = list(parser.examples)
-    res.summary = records.summary(
-        pipe.last_t,
-        rows=res.rows,
-        samples=pipe.samples,
-        bad_lines=res.bad_lines,
-        bad_line_examples=res.examples,
-        gaps=pipe.gaps,
-        dropped=pipe.timebase.dropped,
-        sample_rate_hz=pipe.sample_rate_hz,
-        edges=pipe.edges_by_channel(),
-        totals=pipe.totals(),
-        run_time_s=round(time.monotonic() - wall0, 6),
-    )
-    if pipe.host_col is not None:
-        records.with_utc(res.summary, pipe.last_host_t)
-    emit([res.summary])
-    return res
+    for run in runs:
+        run.finish(parser, wall0)
 
 
 class JsonlWriter(EventLog):

@@ -390,3 +390,38 @@ def test_readme_what_if_example_is_what_the_commands_print(tmp_path, monkeypatch
     monkeypatch.chdir(tmp_path)
     assert main(["compare", *argv]) == 1
     assert capsys.readouterr().out == shown
+
+
+def test_one_read_serves_both_configs_with_the_same_records(tmp_path):
+    """compare reads a recording once when both configs read it the same way: the records of
+    each config are then exactly those of a replay of its own (the demo, with the station's
+    config and a variant with wider bands; reference: two separate replays)."""
+    import tomllib
+
+    from streamcond.config import config_from_dict, load_config
+    from streamcond.replay import run_replay, run_replays, same_reading
+
+    root = Path(__file__).resolve().parent.parent
+    demo = root / "replay_data" / "orchard_pump.csv"
+    a = load_config(root / "config" / "orchard_pump.toml")
+    raw = tomllib.loads((root / "config" / "orchard_pump.toml").read_text())
+    for ch in raw["channel"]:
+        band = ch.get("band", {})
+        if "low" in band and "high" in band:
+            band["low"], band["high"] = band["low"] - 0.05, band["high"] + 0.05
+        elif "width" in band:
+            band["width"] *= 1.5
+    b = config_from_dict(raw)
+    assert same_reading(a, b)
+
+    def strip(recs):
+        return [{k: v for k, v in r.items() if k != "run_time_s"} for r in recs]
+
+    ra, rb = run_replays([a, b], demo, [None, None], keep_records=True)
+    assert strip(ra.records) == strip(run_replay(a, demo, keep_records=True).records)
+    assert strip(rb.records) == strip(run_replay(b, demo, keep_records=True).records)
+    assert strip(ra.records) != strip(rb.records)  # the variant does change something
+    other = config_from_dict({**raw, "source": {**raw["source"], "gap_after_periods": 7.0}})
+    assert not same_reading(a, other)
+    with pytest.raises(ValueError):
+        run_replays([a, other], demo, [None, None])
