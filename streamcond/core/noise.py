@@ -341,7 +341,7 @@ def _median(a: NDArray[np.float64]) -> Any:
 def _row_median(a: NDArray[np.float64]) -> NDArray[np.float64]:
     """Median of each row of a 2-D array (as :func:`_median`). Sorted: on rows of 16 to 2048
     values np.sort is cheaper than np.partition for the two middle order statistics (measured
-    2-5×)."""
+    about 2× at m = 2048 to 4.6× at m = 16)."""
     s = np.sort(a, axis=1)
     k = a.shape[1] // 2
     return s[:, k] if a.shape[1] % 2 else 0.5 * (s[:, k - 1] + s[:, k])
@@ -470,12 +470,15 @@ def _step_statistic(rz: NDArray[np.float64], m: int) -> NDArray[np.float64]:
 def _scale_fit(x: NDArray[np.float64], m: int) -> _Scale:
     """Fit all segments of length m (aligned to the end of x) and vote on them.
 
-    Every figure is computed by the same numpy operation, on the same operands, in the same
-    order as in the plain statement of the method; the shortcuts only skip work whose
-    outcome is known: the refit when no sample is flagged (it would return the first fit's
-    residual), a round of the tail limit that keeps the same samples as the round before (it
-    would find the same limit), and the step statistic when there are too few segments to
-    vote. (``tests/noise_reference.py`` keeps the plain version; a test compares the two.)
+    Written for few numpy calls per segment length, with results identical bit for bit to
+    the plain statement of the method (``tests/noise_reference.py`` keeps it; a test compares
+    the two): every sum and einsum is the same call on the same array, medians are the same
+    order statistics (sorted instead of selected), and the cumulative sum and elementwise
+    operations give the same values in any memory layout. The shortcuts only skip work
+    whose outcome is known: the refit when no sample is flagged (it would return the first
+    fit's residual and the same flags), a round of the tail limit that keeps the same samples
+    as the round before (it would find the same limit), and the step statistic when there
+    are too few segments to vote.
     """
     k = x.size // m
     y = x[x.size - k * m :].reshape(k, m)
