@@ -184,13 +184,10 @@ def run_replays(
         validate(cfg, files=False)  # a replay opens no MQTT files
     parser, blocks, host_time = open_recording(cfgs[0], recording, block_bytes)
     try:
-        # imported after the reader has started: its first block is parsed meanwhile
-        from .core.pipeline import Pipeline
-
         # rows with the host receive time as a last column: a text capture always (see
         # open_recording), any other capture when that time is the sample time
         host_column = host_time or is_capture(recording)
-        runs = [_Run(cfg, sink, keep_records, host_time, host_column, Pipeline)
+        runs = [_Run(cfg, sink, keep_records, host_time, host_column)
                 for cfg, sink in zip(cfgs, sinks)]
         _drive(runs, recording, parser, blocks, chunk=chunk, speed=speed, progress=progress,
                sleep=sleep, clock=clock)
@@ -206,16 +203,20 @@ class _Run:
     """One config's pipeline, result and sink in a replay."""
 
     def __init__(self, cfg: Config, sink: Callable[[dict[str, Any]], None] | None,
-                 keep_records: bool, host_time: bool, host_column: bool, pipeline: Any) -> None:
+                 keep_records: bool, host_time: bool, host_column: bool) -> None:
         self.cfg, self.sink, self.keep = cfg, sink, keep_records
-        self.host_time, self.host_column, self._pipeline = host_time, host_column, pipeline
+        self.host_time, self.host_column = host_time, host_column
         self.pipe: Any = None
         self.res = ReplayResult()
 
     def start(self, columns: list[str]) -> None:
+        # imported once the reader has started (open_recording): its first block is parsed
+        # meanwhile
+        from .core.pipeline import Pipeline
+
         check_columns(self.cfg, columns)
         cols = columns + [HOST_T] if self.host_column else columns
-        self.pipe = self._pipeline(self.cfg, cols, host_time=self.host_time)
+        self.pipe = Pipeline(self.cfg, cols, host_time=self.host_time)
 
     def emit(self, recs: list[dict[str, Any]]) -> None:
         sink, keep = self.sink, self.keep

@@ -20,6 +20,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import records
+from .noise import _median
 
 #: Time steps used to estimate the nominal period when no rate is configured.
 ESTIMATE_N = 16
@@ -65,16 +66,9 @@ class Timebase:
         d = d[d > 0]
         if d.size < ESTIMATE_N and not (final and d.size):
             return False
-        # the median of the first steps, as np.median computes it (the mean of the two middle
-        # order statistics), by np.partition: np.median's first call imports numpy.ma, which
-        # costs a replay more (10-20 ms) than all the rest of this estimate
-        d = d[:ESTIMATE_N]
-        k = d.size // 2
-        if d.size % 2:
-            self.period = float(np.partition(d, k)[k])
-        else:
-            lo_hi = np.partition(d, (k - 1, k))
-            self.period = float(0.5 * (lo_hi[k - 1] + lo_hi[k]))
+        # the median of the first steps as np.median computes it, without np.median: its first
+        # call imports numpy.ma, which costs a replay more (10-20 ms) than all the rest here
+        self.period = float(_median(d[:ESTIMATE_N]))
         return True
 
     def process(self, raw_t: np.ndarray | None, n: int) -> tuple[np.ndarray, np.ndarray, list]:
