@@ -423,6 +423,12 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _replay(args: argparse.Namespace) -> int:
+    if len(args.recording or ()) == 1 and not args.recording[0].startswith("@"):
+        # the reader process starts now: its imports run on the other core while the config
+        # loads here (a bad config or another file stops it unused)
+        from .io.prefetch import start_early
+
+        start_early(args.recording[0])
     from .config import load_config
     from .batch import is_many
     from .golden import compare, compare_other, edges_of, load_records, write_golden

@@ -87,20 +87,22 @@ def open_recording(
     host_time = capture and src.host_time
     if kind != "text":
         # a columnar capture, like a text one, always carries the host time as a last column
-        blocks = read_columnar_blocks(recording, parser, kind, capture)
+        fn, args = read_columnar_blocks, (recording, parser, kind, capture)
     elif capture:
         # the rows always carry the recorded host time (a last column): the sample time when
         # the data has none, and the wall-clock stamp (``utc``) of the records either way
-        blocks = read_capture_blocks(recording, parser, True, block_bytes)
+        fn, args = read_capture_blocks, (recording, parser, True, block_bytes)
     else:
-        blocks = read_blocks(recording, parser, block_bytes)
+        fn, args = read_blocks, (recording, parser, block_bytes)
     # the next block is read and parsed on the other core while this one is conditioned
     # (the parser is driven by that one reader alone, so the records are the same)
     how = prefetch.choose(parser.reader, kind, os.path.getsize(recording))
-    if how == "process":
-        blocks = prefetch.read_in_child(iter(blocks), parser)
-    elif how == "thread":
-        blocks = prefetch.read_ahead(iter(blocks))
+    if how == "process":  # the early reader when `replay` started one (start_early)
+        blocks = prefetch.read_job_in_child(fn, args, parser, str(recording))
+    else:
+        blocks = fn(*args)
+        if how == "thread":
+            blocks = prefetch.read_ahead(iter(blocks))
     return parser, blocks, host_time
 
 

@@ -272,3 +272,148 @@ def test_a_refused_recording_says_the_same_in_every_mode(tmp_path):
         got = {m: _cli_replay(tmp_path, rec, cfg, m)[:2] for m in MODES}
         assert got["off"][0] == 2 and "Traceback" not in got["off"][1]
         assert got["thread"] == got["off"] == got["process"], rec.name
+
+
+# -- the shared slots and the early reader ---------------------------------------------------------
+
+
+@needs_fork
+def test_arrays_cross_in_shared_slots_whole_writable_and_in_order(monkeypatch):
+    """Items whose arrays go through the shared slots (contiguous), through the pipe (too large
+    for a slot, or not contiguous) and none at all arrive equal, in order, writable, and the
+    child that finished first (a slow consumer) loses none of them."""
+    from streamcond.io import sharedslots
+
+    monkeypatch.setattr(sharedslots, "SLOT_BYTES", 1 << 20)  # the fork keeps the setting
+    rng = np.random.default_rng(3)
+    sent = []
+    for i in range(12):
+        kind = i % 4
+        if kind == 0:
+            item = (rng.standard_normal((20_000, 5)), i)  # 800 kB: a slot
+        elif kind == 1:
+            item = (rng.standard_normal((40_000, 5)), i)  # 1.6 MB: larger than a slot
+        elif kind == 2:
+            item = (rng.standard_normal((1000, 6))[:, ::2], i)  # not contiguous
+        else:
+            item = ("no array", i)
+        sent.append(item)
+
+    got = []
+    for k, item in enumerate(read_in_child(iter(sent), _Counter())):
+        if k < 3:
+            time.sleep(0.2)  # the child runs ahead and, at the end, leaves before we read
+        got.append(item)
+    assert len(got) == len(sent)
+    for (a, i), (b, j) in zip(sent, got):
+        assert i == j
+        if isinstance(a, np.ndarray):
+            np.testing.assert_array_equal(a, b)
+            b += 1.0  # the consumer owns its copy
+        else:
+            assert a == b
+
+
+def _big_csv(path: Path, rows: int = 80_000) -> None:
+    t = np.arange(rows) * 1.0
+    x = np.sin(t / 50.0)
+    path.write_text("t_ms,a\n" + "\n".join(f"{a:.0f},{b:.6f}" for a, b in zip(t, x)) + "\n")
+
+
+@needs_fork
+def test_the_early_reader_reads_what_a_reader_in_process_reads(tmp_path, monkeypatch):
+    from streamcond.io import prefetch
+    from streamcond.io.lineparse import LineParser
+    from streamcond.io.recording import read_blocks
+
+    monkeypatch.setenv("STREAMCOND_CSV_READER", "numpy")
+    monkeypatch.setenv(prefetch.ENV, "process")  # a test process may hold threads or pyarrow
+    rec = tmp_path / "big.csv"
+    _big_csv(rec)
+    assert rec.stat().st_size >= prefetch.MIN_BYTES
+    own = LineParser("csv", needed=["t_ms", "a"])
+    expected = [p.rows for p, _, _ in read_blocks(rec, own, 1 << 18)]
+
+    before = _children()
+    assert prefetch.start_early(str(rec))
+    assert len(_children() - before) == 1  # waiting for its job
+    parser = LineParser("csv", needed=["t_ms", "a"])
+    got = [p.rows for p, _, _ in prefetch.read_job_in_child(
+        read_blocks, (rec, parser, 1 << 18), parser, str(rec))]
+    assert len(got) == len(expected) > 3
+    for a, b in zip(expected, got):
+        np.testing.assert_array_equal(a, b)
+    assert parser.lines == own.lines and parser.columns == ["t_ms", "a"]
+    assert _children() == before
+
+
+@needs_fork
+def test_an_early_reader_without_its_job_is_stopped(tmp_path, monkeypatch):
+    """Started for one file and asked for another (or never asked): the child is stopped and
+    reaped, and the other file is read by a child forked then."""
+    from streamcond.io import prefetch
+    from streamcond.io.lineparse import LineParser
+    from streamcond.io.recording import read_blocks
+
+    monkeypatch.setenv("STREAMCOND_CSV_READER", "numpy")
+    monkeypatch.setenv(prefetch.ENV, "process")
+    one, other = tmp_path / "one.csv", tmp_path / "other.csv"
+    _big_csv(one)
+    _big_csv(other, 70_000)
+    before = _children()
+    assert prefetch.start_early(str(one))
+    parser = LineParser("csv", needed=["t_ms", "a"])
+    rows = sum(p.rows.shape[0] for p, _, _ in prefetch.read_job_in_child(
+        read_blocks, (other, parser, 1 << 18), parser, str(other)))
+    assert rows == 70_000 and _children() == before
+    assert prefetch.start_early(str(one))
+    prefetch._discard_early()  # what the exit does when no job came
+    assert _children() == before
+
+
+def test_no_early_reader_where_none_would_run(tmp_path, monkeypatch):
+    from streamcond.io import prefetch
+
+    small = tmp_path / "small.csv"
+    small.write_text("t_ms,a\n0,1\n")
+    pq = tmp_path / "x.parquet"
+    pq.write_bytes(b"PAR1" + bytes(prefetch.MIN_BYTES))
+    monkeypatch.delenv(prefetch.ENV, raising=False)
+    assert not prefetch.start_early(str(small))  # too small to gain
+    monkeypatch.setenv(prefetch.ENV, "process")  # even where forced:
+    assert not prefetch.start_early(str(pq))  # columnar: read by its own reader
+    assert not prefetch.start_early(str(tmp_path))  # a directory
+    assert not prefetch.start_early(str(tmp_path / "missing.csv"))
+    big = tmp_path / "big.csv"
+    _big_csv(big)
+    for mode in ("off", "thread"):
+        monkeypatch.setenv(prefetch.ENV, mode)
+        assert not prefetch.start_early(str(big))
+
+
+@needs_fork
+def test_a_bad_config_stops_the_early_reader(tmp_path):
+    """`replay` of a large recording with a config that does not load: exit 2, one sentence,
+    and no reader process left behind."""
+    rec = tmp_path / "leftover-probe.csv"
+    _big_csv(rec)
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text('[source]\nkind = "file"\nsample_rate_hz = -5\n')
+    r = subprocess.run(
+        [sys.executable, "-m", "streamcond", "replay", str(rec), "-c", str(cfg), "--events",
+         str(tmp_path / "e.jsonl"), "--no-progress"],
+        capture_output=True, text=True, timeout=60,
+        env={**os.environ, "STREAMCOND_READ_AHEAD": "process"},
+    )
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert "sample_rate_hz" in r.stderr
+    time.sleep(0.2)
+    left = [p for p in Path("/proc").iterdir() if p.name.isdigit() and _cmdline(p, str(rec))]
+    assert not left
+
+
+def _cmdline(proc: Path, needle: str) -> bool:
+    try:
+        return needle in (proc / "cmdline").read_bytes().decode(errors="replace")
+    except OSError:
+        return False

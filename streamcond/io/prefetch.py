@@ -6,7 +6,8 @@ order as without reading ahead; its items arrive in order, each once; an error a
 its block would have — after every block before it):
 
 * :func:`read_in_child` — a forked child process runs the block iterator and sends each block
-  (the parsed rows and the parser's counters) through a pipe. Any reader gains: numpy's
+  (the parsed rows and the parser's counters): the rows in shared memory
+  (:mod:`streamcond.io.sharedslots`), the rest through a pipe. Any reader gains: numpy's
   ``loadtxt`` and the kv/JSON line parsers hold the GIL, so in a thread they could not overlap
   the conditioning. Used where ``fork`` is safe: POSIX, more than one usable core, and a
   process with no other Python thread and no pyarrow thread pool yet (a fork copies only the
@@ -14,8 +15,15 @@ its block would have — after every block before it):
 * :func:`read_ahead` — a thread, one block ahead. pyarrow parses a CSV block, and reads a
   Parquet row group, with the GIL released, so a thread is enough for its readers.
 
-The pipe's own buffer is the back-pressure: the child parses at most one block beyond the one
-it is writing, so memory stays bounded by the block size.
+The shared slots are the back-pressure: the child fills a slot only once the replay has taken
+the block out of it, so memory stays bounded by the block size.
+
+``streamcond replay`` forks its reader child *early* (:func:`start_early`), before the config
+is loaded: the child imports the CSV reader (pyarrow, about 30 ms) while the replay loads its
+config (pydantic and the config models, about 60 ms) on the other core, and then waits for its
+job, the block iterator and its parser, which :func:`read_job_in_child` sends once the config
+has said how to read the file. A job that never comes (a bad config, another file) ends with
+the replay, which stops the child.
 """
 
 from __future__ import annotations
@@ -29,6 +37,8 @@ import sys
 import threading
 from collections.abc import Iterator
 from typing import TypeVar
+
+from .sharedslots import SharedSlots
 
 T = TypeVar("T")
 
@@ -127,6 +137,7 @@ def _send(fh, obj: object) -> None:
     data = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
     fh.write(_LEN.pack(len(data)))
     fh.write(data)
+    fh.flush()  # a message is a few hundred bytes: it must not wait in the buffer
 
 
 def _recv(fh) -> object:
@@ -140,26 +151,27 @@ def _recv(fh) -> object:
     return pickle.loads(data)
 
 
-def _child(blocks: Iterator[T], parser: object, w: int) -> None:
+def _child(blocks: Iterator[T], parser: object, w: int, slots: SharedSlots) -> None:
     """The reader process: every item, then the end or the error; never returns."""
     code = 0
     try:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+        slots.in_child()
         from . import fastcsv
 
         fastcsv.THREADS = False  # one core parses, the other conditions
         with open(w, "wb") as fh:
             try:
                 for item in blocks:
-                    _send(fh, ("item", item, {k: getattr(parser, k) for k in SYNCED}))
-                _send(fh, ("end", None, {k: getattr(parser, k) for k in SYNCED}))
+                    _send(fh, ("item", *slots.pack(item), {k: getattr(parser, k) for k in SYNCED}))
+                _send(fh, ("end", None, -1, [], {k: getattr(parser, k) for k in SYNCED}))
             except BrokenPipeError:
                 raise
             except BaseException as e:
                 try:
-                    _send(fh, ("error", e, None))
+                    _send(fh, ("error", e, -1, [], None))
                 except (pickle.PicklingError, TypeError, AttributeError):
-                    _send(fh, ("error", RuntimeError(f"{type(e).__name__}: {e}"), None))
+                    _send(fh, ("error", RuntimeError(f"{type(e).__name__}: {e}"), -1, [], None))
     except BrokenPipeError:
         pass  # the parent stopped reading (an early stop, an interrupt): nothing to say
     except BaseException:
@@ -169,8 +181,7 @@ def _child(blocks: Iterator[T], parser: object, w: int) -> None:
 
 
 #: The pipe's buffer, where the system allows it (Linux: up to /proc/sys/fs/pipe-max-size,
-#: 1 MiB by default): a block of rows crosses in 4 writes instead of 64, with as few switches
-#: between the two processes.
+#: 1 MiB by default): an item too large for a slot crosses in few writes.
 PIPE_BYTES = 1 << 20
 
 
@@ -187,6 +198,7 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
     """Yield the items of ``blocks``, produced by a child process forked now (so the first
     block is parsed while the caller gets ready); ``parser`` (the parser ``blocks`` drives) is
     kept up to date here with the child's (:data:`SYNCED`)."""
+    slots = SharedSlots()
     r, w = os.pipe()
     _widen(w)
     sys.stdout.flush()
@@ -194,21 +206,22 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
     pid = os.fork()
     if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
         os.close(r)
-        _child(blocks, parser, w)
+        _child(blocks, parser, w, slots)
     os.close(w)
-    gen = _from_child(open(r, "rb"), pid, parser)
+    slots.in_consumer()
+    gen = _from_child(open(r, "rb"), pid, parser, slots)
     next(gen)
     return gen
 
 
-def _from_child(fh, pid: int, parser: object) -> Iterator[T]:
+def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]:
     ended = False
     try:
         yield None  # type: ignore[misc]  # primed by read_in_child: the finally now always runs
         with fh:
             while True:
                 try:
-                    what, item, state = _recv(fh)
+                    what, data, slot, sizes, state = _recv(fh)
                 except EOFError:
                     raise RuntimeError("the recording's reader process ended unexpectedly") from None
                 if state is not None:
@@ -219,8 +232,8 @@ def _from_child(fh, pid: int, parser: object) -> Iterator[T]:
                     return
                 if what == "error":
                     ended = True
-                    raise item  # type: ignore[misc]
-                yield item  # type: ignore[misc]
+                    raise data  # type: ignore[misc]
+                yield slots.unpack(data, slot, sizes)  # type: ignore[misc]
     finally:
         fh.close()
         if not ended:
@@ -232,6 +245,7 @@ def _from_child(fh, pid: int, parser: object) -> Iterator[T]:
             os.waitpid(pid, 0)
         except OSError:
             pass
+        slots.close()
 
 
 #: Recordings smaller than this are read in the replay's own thread: one or two blocks leave
@@ -261,3 +275,141 @@ def worth_it(reader: str, kind: str) -> bool:
     """Read ahead with pyarrow's readers (they release the GIL): a Parquet or Arrow file, or CSV
     with the ``pyarrow`` or ``auto`` (pyarrow installed) block reader."""
     return kind in ("parquet", "arrow") or reader in ("pyarrow", "auto")
+
+
+# -- the early reader: forked before the replay has loaded its config -------------------------
+class _Early:
+    """A reader child waiting for its job: its pid, the job pipe, the rows pipe, the slots, and
+    the file it was started for (device, inode, size, modification time)."""
+
+    def __init__(self, pid: int, job_w: int, rows_r: int, slots: SharedSlots,
+                 key: tuple[int, ...]) -> None:
+        self.pid, self.job_w, self.rows_r, self.slots, self.key = pid, job_w, rows_r, slots, key
+
+    def discard(self) -> None:
+        """No job after all: the child is stopped (it has read nothing and holds nothing)."""
+        for fd in (self.job_w, self.rows_r):
+            if fd >= 0:
+                try:
+                    os.close(fd)
+                except OSError:
+                    pass
+        try:
+            os.kill(self.pid, signal.SIGTERM)
+        except OSError:
+            pass
+        try:
+            os.waitpid(self.pid, 0)
+        except OSError:
+            pass
+        self.slots.close()
+
+
+_early: _Early | None = None
+
+
+def _file_key(path: str) -> tuple[int, ...] | None:
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
+def start_early(path: str) -> bool:
+    """Fork the reader child for the text recording ``path`` now, where :func:`choose` would
+    fork one for it (a plain file of at least :data:`MIN_BYTES`, fork safe here, or
+    ``STREAMCOND_READ_AHEAD=process``). It imports what reading needs and waits for
+    :func:`read_job_in_child`. Returns whether it started."""
+    global _early
+    from .filekind import HEAD_BYTES, kind_of_head
+
+    want = os.environ.get(ENV, "")
+    if _early is not None or want in ("off", "thread"):
+        return False
+    key = _file_key(path)
+    if key is None or not os.path.isfile(path):
+        return False
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(HEAD_BYTES)
+    except OSError:
+        return False
+    forced = want == "process" and hasattr(os, "fork")
+    if kind_of_head(head) != "text" or not (forced or (key[2] >= MIN_BYTES and can_fork())):
+        return False
+    # the reading modules (numpy among them) are imported before the fork, so that the two
+    # processes share them: imported in each, they cost more CPU than the overlap saved
+    # (measured: 1.06x the wall time of a replay)
+    from . import capture, recording  # noqa: F401
+
+    slots = SharedSlots()
+    job_r, job_w = os.pipe()
+    rows_r, rows_w = os.pipe()
+    _widen(rows_w)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    pid = os.fork()
+    if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
+        os.close(job_w)
+        os.close(rows_r)
+        _early_child(job_r, rows_w, slots)
+    os.close(job_r)
+    os.close(rows_w)
+    slots.in_consumer()
+    _early = _Early(pid, job_w, rows_r, slots, key)
+    import atexit
+
+    atexit.register(_discard_early)
+    return True
+
+
+def _discard_early() -> None:
+    global _early
+    if _early is not None:
+        early, _early = _early, None
+        early.discard()
+
+
+def _early_child(job_r: int, rows_w: int, slots: SharedSlots) -> None:  # pragma: no cover - child
+    """Import the CSV reader, then run the job that comes (or leave when none does)."""
+    try:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+        from . import fastcsv
+
+        try:
+            wanted = fastcsv.choose(None)
+        except ValueError:
+            wanted = "numpy"  # the replay reports the setting; here it only skips an import
+        if wanted in ("auto", "pyarrow"):
+            fastcsv._arrow()  # about 30 ms, while the replay loads its config on the other core
+        with open(job_r, "rb") as fh:
+            fn, args = _recv(fh)
+    except BaseException:
+        os._exit(0)  # no job: the replay closed the pipe (a bad config, another file)
+    _child(iter(fn(*args)), args[1], rows_w, slots)
+
+
+def read_job_in_child(fn, args: tuple, parser: object, path: str) -> Iterator[T]:
+    """:func:`read_in_child` of ``fn(*args)`` (``parser``, which is kept up to date, is
+    ``args[1]``), run by the early child started for ``path`` if there is one (``fn`` and
+    ``args`` go to it pickled), else by a child forked now."""
+    global _early
+    early, _early = _early, None
+    if early is not None and early.key != _file_key(str(path)):
+        early.discard()  # started for another file, or the file changed since
+        early = None
+    if early is not None:
+        fh = open(early.job_w, "wb")
+        early.job_w = -1  # fh owns it now
+        try:
+            with fh:
+                _send(fh, (fn, args))
+        except (OSError, pickle.PicklingError, TypeError, AttributeError):
+            early.discard()  # gone, or a job it cannot take: a child forked now reads
+            early = None
+    if early is None:
+        return read_in_child(iter(fn(*args)), parser)
+    gen = _from_child(open(early.rows_r, "rb"), early.pid, parser, early.slots)
+    next(gen)
+    return gen

@@ -14,6 +14,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from ..errors import InputError
+from .filekind import ARROW_MAGIC, HEAD_BYTES, PARQUET_MAGIC, kind_of_head  # noqa: F401
 from .lineparse import LineParser, Parsed
 
 DEFAULT_BLOCK_BYTES = 1 << 22
@@ -22,8 +23,6 @@ DEFAULT_BLOCK_BYTES = 1 << 22
 FIRST_BLOCK_BYTES = 1 << 18
 #: How much of a file's start is looked at to tell text from binary.
 SNIFF_BYTES = 1 << 16
-PARQUET_MAGIC = b"PAR1"
-ARROW_MAGIC = b"ARROW1"
 
 
 def _open(p: Path):
@@ -43,12 +42,7 @@ def kind_of(path: str | Path) -> str:
     """``"parquet"``, ``"arrow"`` or ``"text"``, from the file's first bytes."""
     size, fh = _open(Path(path))
     with fh:
-        head = fh.read(8)
-    if head[:4] == PARQUET_MAGIC:
-        return "parquet"
-    if head[:6] == ARROW_MAGIC:
-        return "arrow"
-    return "text"
+        return kind_of_head(fh.read(HEAD_BYTES))
 
 
 def looks_binary(head: bytes) -> bool:
