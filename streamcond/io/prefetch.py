@@ -194,6 +194,23 @@ def _widen(fd: int) -> None:
         pass  # not Linux, or a lower limit: the default buffer works, a little slower
 
 
+def _fork(run, close_in_child: tuple[int, ...], close_here: tuple[int, ...],
+          slots: SharedSlots) -> int:
+    """Fork a reader child that runs ``run`` (which leaves by ``os._exit``); each side closes
+    the pipe ends that belong to the other. Returns the child's pid."""
+    sys.stdout.flush()  # or the child would print what this process had buffered, again
+    sys.stderr.flush()
+    pid = os.fork()
+    if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
+        for fd in close_in_child:
+            os.close(fd)
+        run()
+    for fd in close_here:
+        os.close(fd)
+    slots.in_consumer()
+    return pid
+
+
 def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
     """Yield the items of ``blocks``, produced by a child process forked now (so the first
     block is parsed while the caller gets ready); ``parser`` (the parser ``blocks`` drives) is
@@ -201,14 +218,8 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
     slots = SharedSlots()
     r, w = os.pipe()
     _widen(w)
-    sys.stdout.flush()
-    sys.stderr.flush()
-    pid = os.fork()
-    if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
-        os.close(r)
-        _child(blocks, parser, w, slots)
-    os.close(w)
-    slots.in_consumer()
+    pid = _fork(lambda: _child(blocks, parser, w, slots), close_in_child=(r,),
+                close_here=(w,), slots=slots)
     gen = _from_child(open(r, "rb"), pid, parser, slots)
     next(gen)
     return gen
@@ -347,16 +358,8 @@ def start_early(path: str) -> bool:
     job_r, job_w = os.pipe()
     rows_r, rows_w = os.pipe()
     _widen(rows_w)
-    sys.stdout.flush()
-    sys.stderr.flush()
-    pid = os.fork()
-    if pid == 0:  # pragma: no cover - runs in the child, which leaves by os._exit
-        os.close(job_w)
-        os.close(rows_r)
-        _early_child(job_r, rows_w, slots)
-    os.close(job_r)
-    os.close(rows_w)
-    slots.in_consumer()
+    pid = _fork(lambda: _early_child(job_r, rows_w, slots), close_in_child=(job_w, rows_r),
+                close_here=(job_r, rows_w), slots=slots)
     _early = _Early(pid, job_w, rows_r, slots, key)
     import atexit
 
