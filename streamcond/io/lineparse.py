@@ -157,12 +157,17 @@ class LineParser:
                 return self._empty()
             data = data[nl + 1 :]
             self._skip_tail = False
-        buf = self._tail + data if self._tail else data
-        cut = buf.rfind(b"\n")
+        tail = self._tail  # never holds a newline: the rest after the last one
+        cut = data.rfind(b"\n")
         if cut < 0:
-            self._tail = buf
+            self._tail = tail + data
             return self._check_tail()
-        body, self._tail = buf[: cut + 1], buf[cut + 1 :]
+        if tail or cut + 1 < len(data):
+            # one copy of the block (tail + data[:cut + 1] would make two)
+            body = b"".join((tail, memoryview(data)[: cut + 1]))
+        else:
+            body = data
+        self._tail = data[cut + 1 :]
         out = self._parse_block(body)
         extra = self._check_tail()
         if extra.bad:
@@ -282,22 +287,24 @@ class LineParser:
             return body[pos:]
         return b""
 
-    def _screen(self, body: bytes) -> bool:
+    def _screen(self, body: bytes) -> int | None:
         """May the whole block go to a C block reader? Numeric bytes only, CR only in CRLF,
-        every line within the limit (vectorised: line lengths from the LF positions)."""
+        every line within the limit (vectorised: line lengths from the LF positions). Returns
+        the number of lines, or None for the careful path."""
         if body.translate(None, _CSV_BYTES):
-            return False
+            return None
         ncr = body.count(b"\r") if b"\r" in body else 0
         if ncr and ncr != body.count(b"\r\n"):
-            return False
+            return None
         if self.max_line is not None and len(body) > self.max_line:
             nl = np.flatnonzero(np.frombuffer(body, np.uint8) == 10)
             lens = np.diff(nl, prepend=-1) - 1
             if ncr:
                 lens -= np.frombuffer(body, np.uint8)[np.maximum(nl - 1, 0)] == 13
             if lens.size and int(lens.max()) > self.max_line:
-                return False
-        return True
+                return None
+            return int(nl.size)  # the LF positions count the lines: no second pass
+        return body.count(b"\n")
 
     def _read_block(self, block: bytes) -> np.ndarray | None:
         if self._block_reader is None:
@@ -305,9 +312,9 @@ class LineParser:
         return self._block_reader(block, self.ncols)
 
     def _parse_csv(self, body: bytes) -> Parsed:
-        nlines = body.count(b"\n")
         first_line = self.lines + 1
-        if self._screen(body):
+        nlines = self._screen(body)
+        if nlines is not None:
             # the reader skips blank lines; any difference in the row count sends the block
             # to the careful path below, which sorts the lines out
             rows = self._read_block(body)
