@@ -24,7 +24,6 @@ def convert(cfg: Any, recording: str | Path, out: str | Path, *, force: bool = F
     """Convert; returns ``{"rows", "bad_lines", "in_bytes", "out_bytes", "ratio"}``."""
     from .io.columnar import DataParquetWriter
     from .io.lineparse import HOST_T
-    from .io.capture import is_capture
     from .replay import check_columns, open_recording
 
     src, dst = Path(recording), Path(out)
@@ -35,8 +34,8 @@ def convert(cfg: Any, recording: str | Path, out: str | Path, *, force: bool = F
             raise InputError(f"The output {str(dst)!r} exists; add --force to replace it")
     if not dst.parent.is_dir():
         raise InputError(f"The folder {str(dst.parent)!r} of the output does not exist")
-    parser, blocks, _host_time = open_recording(cfg, src)
-    host_column = is_capture(src)  # a capture's rows carry the host time as a last column
+    # a capture's rows carry the host time as a last column
+    parser, blocks, _host_time, host_column = open_recording(cfg, src)
     tmp = dst.with_name(dst.name + ".part")
     writer: DataParquetWriter | None = None
     try:

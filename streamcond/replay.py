@@ -62,10 +62,11 @@ def check_columns(cfg: Config, columns: list[str]) -> None:
 def open_recording(
     cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES,
     reader: str | None = None,
-) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool]:
+) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool, bool]:
     """The parser and the block iterator for a recording or a capture (text, Parquet or Arrow
-    IPC), and whether the rows carry host receive times as their sample time (a capture read
-    with a config that has no time column and no fixed rate). ``reader`` picks the CSV block
+    IPC), whether the rows carry host receive times as their sample time (a capture read
+    with a config that has no time column and no fixed rate), and whether the recording is a
+    capture (its rows then end with the host receive time). ``reader`` picks the CSV block
     reader (``numpy`` or ``pyarrow``; default: the fastest installed)."""
     from .io.recording import kind_of
 
@@ -103,7 +104,7 @@ def open_recording(
         blocks = fn(*args)
         if how == "thread":
             blocks = prefetch.read_ahead(iter(blocks))
-    return parser, blocks, host_time
+    return parser, blocks, host_time, capture
 
 
 class ReplayInterrupted(Exception):
@@ -184,11 +185,10 @@ def run_replays(
         raise ValueError("run_replays needs configs that read the recording the same way")
     for cfg in cfgs:
         validate(cfg, files=False)  # a replay opens no MQTT files
-    parser, blocks, host_time = open_recording(cfgs[0], recording, block_bytes)
+    parser, blocks, host_time, capture = open_recording(cfgs[0], recording, block_bytes)
     try:
-        # rows with the host receive time as a last column: a text capture always (see
-        # open_recording), any other capture when that time is the sample time
-        host_column = host_time or is_capture(recording)
+        # every capture's rows end with the host receive time (see open_recording)
+        host_column = host_time or capture
         runs = [_Run(cfg, sink, keep_records, host_time, host_column)
                 for cfg, sink in zip(cfgs, sinks)]
         _drive(runs, recording, parser, blocks, chunk=chunk, speed=speed, progress=progress,

@@ -37,13 +37,13 @@ def is_capture(path: str | Path) -> bool:
         return False
     if head == MAGIC:
         return True
-    from .recording import ARROW_MAGIC, PARQUET_MAGIC
+    from .filekind import kind_of_head
 
-    if head[:4] == PARQUET_MAGIC or head[:6] == ARROW_MAGIC:
+    kind = kind_of_head(head)
+    if kind != "text":
         from ..errors import InputError
         from .columnar import has_host_time, is_columnar_capture
 
-        kind = "parquet" if head[:4] == PARQUET_MAGIC else "arrow"
         try:
             return is_columnar_capture(path, kind) or has_host_time(path, kind)
         except InputError:

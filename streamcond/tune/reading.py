@@ -80,7 +80,7 @@ def read_channels(
     from ..core.timebase import Timebase
     from ..replay import check_columns, open_recording
 
-    parser, blocks, host_time = open_recording(cfg, recording)
+    parser, blocks, host_time, _capture = open_recording(cfg, recording)
     src = cfg.source
     tcols: list[np.ndarray] = []
     vcols: list[np.ndarray] = []
