@@ -374,7 +374,8 @@ def format_table(r: dict[str, Any]) -> str:
     for key, bound, what in READER_TARGETS:
         if key in r:
             met = "met" if r[key] <= bound else "NOT met"
-            lines.append(f"  {what}: {r[key]:.2f} (target <= {bound}) {met}")
+            # three decimals: a ratio just over its bound must not print as the bound itself
+            lines.append(f"  {what}: {r[key]:.3f} (target <= {bound}) {met}")
         else:
             lines.append(f"  {what}: not measured (reader not installed)")
     return "\n".join(lines)
