@@ -335,19 +335,16 @@ def start_early(path: str) -> bool:
     global _early
     from .filekind import HEAD_BYTES, kind_of_head
 
-    want = os.environ.get(ENV, "")
-    if _early is not None or want in ("off", "thread"):
-        return False
     key = _file_key(path)
-    if key is None or not os.path.isfile(path):
+    if _early is not None or key is None or not os.path.isfile(path):
         return False
     try:
         with open(path, "rb") as fh:
             head = fh.read(HEAD_BYTES)
     except OSError:
         return False
-    forced = want == "process" and hasattr(os, "fork")
-    if kind_of_head(head) != "text" or not (forced or (key[2] >= MIN_BYTES and can_fork())):
+    # the reader does not matter to choose() here: every reader is given a child where it forks
+    if kind_of_head(head) != "text" or choose("numpy", "text", key[2]) != "process":
         return False
     # the reading modules (numpy among them) are imported before the fork, so that the two
     # processes share them: imported in each, they cost more CPU than the overlap saved

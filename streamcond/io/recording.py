@@ -14,7 +14,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from ..errors import InputError
-from .filekind import ARROW_MAGIC, HEAD_BYTES, PARQUET_MAGIC, kind_of_head  # noqa: F401
+from .filekind import HEAD_BYTES, kind_of_head
 from .lineparse import LineParser, Parsed
 
 DEFAULT_BLOCK_BYTES = 1 << 22
@@ -87,7 +87,7 @@ def read_blocks(
             if not data:
                 break
             if done == 0:
-                if data[:4] == PARQUET_MAGIC or data[:6] == ARROW_MAGIC:
+                if kind_of_head(data) != "text":
                     raise InputError(f"The recording {str(p)!r} is a columnar file; "
                                      "this reader takes text lines")
                 if looks_binary(data[:SNIFF_BYTES]):
