@@ -247,16 +247,22 @@ def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]
                 yield slots.unpack(data, slot, sizes)  # type: ignore[misc]
     finally:
         fh.close()
-        if not ended:
-            try:
-                os.kill(pid, signal.SIGTERM)
-            except OSError:
-                pass
+        _reap(pid, stop=not ended)
+        slots.close()
+
+
+def _reap(pid: int, stop: bool) -> None:
+    """Wait for a reader child to end; with ``stop``, end it first (it may be blocked
+    writing, or waiting for a job)."""
+    if stop:
         try:
-            os.waitpid(pid, 0)
+            os.kill(pid, signal.SIGTERM)
         except OSError:
             pass
-        slots.close()
+    try:
+        os.waitpid(pid, 0)
+    except OSError:
+        pass
 
 
 #: Recordings smaller than this are read in the replay's own thread: one or two blocks leave
@@ -305,14 +311,7 @@ class _Early:
                     os.close(fd)
                 except OSError:
                     pass
-        try:
-            os.kill(self.pid, signal.SIGTERM)
-        except OSError:
-            pass
-        try:
-            os.waitpid(self.pid, 0)
-        except OSError:
-            pass
+        _reap(self.pid, stop=True)
         self.slots.close()
 
 
