@@ -106,3 +106,47 @@ def test_gap_leaves_no_empty_windows():
         ("stats", 40.0),  # 45-50 s; the windows 20-40 s held no sample and give no record
         ("stats", 50.0),  # 50-52 s: the last, partial window, flushed at the end
     ]
+
+
+def test_window_ends_follow_the_quotient_where_rounding_disagrees_with_the_product():
+    # 0.58 s on a 5 ms clock is 116 × 0.005; IEEE 754 doubles give 0.58 / 0.02 =
+    # 28.999999999999996 while 29 × 0.02 == 0.58 (checked with Python's float arithmetic).
+    # A window end found from the product but numbered from the quotient used to stand still
+    # there; windows are numbered floor(t / interval) throughout, and each starts where that
+    # number changes (numpy.floor and numpy.diff as the reference).
+    assert 0.58 / 0.02 < 29 and 29 * 0.02 == 0.58
+    t = np.arange(400) * 0.005
+    s = ChannelStats("x", interval_s=0.02, center=0.0)
+    got = s.boundaries(t)
+    assert got == (np.flatnonzero(np.diff(np.floor(t / 0.02))) + 1).tolist()
+    assert 116 in got or 117 in got
+    # and a whole run on that clock closes one window per quotient step, in any blocks
+    cfg = base({"low": -0.5, "high": 0.5}, interval_s=0.02)
+    x = np.sin(2 * np.pi * 3.0 * t)
+    whole = [r for r in run(cfg, t, x) if r["kind"] == "stats"]
+    assert len(whole) == len(np.unique(np.floor(t / 0.02)))
+    assert [r for r in run(cfg, t, x, chunk=3) if r["kind"] == "stats"] == whole
+
+
+def test_a_quiet_channel_is_not_deferred_past_a_window_end_that_rounding_hides():
+    # 286 × 0.005 = 1.43 on this clock; 1.43 / 0.13 = 11.0 but 11 × 0.13 = 1.4300000000000002
+    # (IEEE 754 doubles, checked with Python's float arithmetic): the sample at 1.43 s opens
+    # window 11 though it is below that product. A channel that provably emits nothing may be
+    # conditioned later, but not across that window's end, or its stats record comes out
+    # after the other channel's and the order depends on the blocks.
+    t = np.arange(400) * 0.005
+    k = np.floor(t / 0.13)
+    assert np.any((k * 0.13 > t) & (np.diff(k, prepend=-1.0) > 0))
+    # one step, then quiet; with no prefilter (channel a) that is provable from the raw values
+    x = np.where(t < 0.5, 0.0, 1.0)
+    cfg = {
+        "source": {"kind": "file", "time_column": "t", "sample_rate_hz": 200.0},
+        "channel": [{"name": "a", "column": "x", "band": {"low": 0.4, "high": 0.6}},
+                    {"name": "b", "column": "x", "band": {"low": 0.3, "high": 0.7},
+                     "filter": {"kind": "moving_average", "window": 2}}],
+        "stats": {"interval_s": 0.13},
+    }
+    whole = run(cfg, t, x)
+    assert [r for r in run(cfg, t, x, chunk=1)] == whole
+    stats = [(r["t"], r["channel"]) for r in whole if r["kind"] == "stats"]
+    assert stats == sorted(stats, key=lambda s: (s[0], s[1]))

@@ -203,8 +203,7 @@ class Pipeline:
             return False
         if ch._pending_noise is not None:
             return False
-        w = ch.stats.window
-        if w is None or t_last >= (w + 1) * ch.stats.interval:
+        if ch.stats.ends_by(t_last):
             return False  # a stats window ends (or starts) in these samples
         nt = ch.noise
         n0 = nt.samples_seen

@@ -92,20 +92,29 @@ class ChannelStats:
         out: list[int] = []
         if t.size == 0:
             return out
+        # A sample's window is floor(t / interval), the rule close() uses too. Searching the
+        # window numbers, not t against (k + 1) * interval, keeps the two in agreement where
+        # rounding puts a sample at or past that product but its quotient just below k + 1
+        # (which made this loop stand still).
+        w = np.floor(t / self.interval)
         k = self.window
         if k is None:
-            k = math.floor(t[0] / self.interval)
+            k = math.floor(w[0])
             self.window = k
         start = 0
         while True:
-            end_t = (k + 1) * self.interval
-            j = int(np.searchsorted(t[start:], end_t, side="left")) + start
+            j = int(np.searchsorted(w[start:], k + 1, side="left")) + start
             if j >= t.size:
                 break
             out.append(j)
-            k = math.floor(t[j] / self.interval)  # skips windows with no samples (gaps)
+            k = math.floor(w[j])  # skips windows with no samples (gaps)
             start = j
         return out
+
+    def ends_by(self, t: float) -> bool:
+        """Does the current window end at or before the sample time ``t`` (or is there none
+        yet)? By the window numbers, as :meth:`boundaries` finds the ends."""
+        return self.window is None or math.floor(t / self.interval) != self.window
 
     def window_bounds(self) -> tuple[float, float]:
         assert self.window is not None
