@@ -146,19 +146,93 @@ class ChannelConditioner:
             events.append((j, 0, None))
         events.sort(key=lambda e: (e[0], e[1]))
         out: list[Tagged] = []
+        # Only a fault change, or a noise estimate for an adaptive band, changes what the
+        # comparator does; a stats window's end (or a noise figure for the stats alone) only
+        # needs the records up to its sample. So the kernel runs once per stretch between the
+        # former, and the latter cut its results (see _span).
+        moves = (1, 2) if self.band.adaptive else (1,)
         a = 0
-        for k, order, payload in events:
-            if k > a:
-                out.extend(self._segment(t, v, y, a, k))
-                a = k
-            if order == 0:
-                out.extend(self._close_window(k, float(t[k])))
-            elif order == 1:
+        stops: list[tuple[int, int, Any]] = []
+        for ev in events:
+            k, order, payload = ev
+            if order not in moves:
+                stops.append(ev)
+                continue
+            out.extend(self._span(t, v, y, a, k, stops))
+            stops = []
+            a = k
+            if order == 1:
                 out.append(self._fault_change(k, float(t[k]), float(raw[k]), payload))
             else:
                 self._apply_noise(payload, y, k)
-        if a < n:
-            out.extend(self._segment(t, v, y, a, n))
+        out.extend(self._span(t, v, y, a, n, stops))
+        return out
+
+    def _stop(self, ev: tuple[int, int, Any], t: np.ndarray, y: np.ndarray) -> list[Tagged]:
+        """An event that leaves the comparator as it is: a window's end, or (fixed band) a
+        noise estimate for the stats."""
+        k, order, payload = ev
+        if order == 0:
+            return self._close_window(k, float(t[k]))
+        self._apply_noise(payload, y, k)
+        return []
+
+    def _span(
+        self, t: np.ndarray, v: np.ndarray, y: np.ndarray, a: int, b: int,
+        stops: list[tuple[int, int, Any]],
+    ) -> list[Tagged]:
+        """Samples [a, b) under one band, with ``stops`` (events at samples a .. b-1, in
+        order) handled where they fall.
+
+        On the fast path (no dwell, no fault) the kernel runs over the whole stretch once and
+        its transitions are cut at the stops: the same records as one kernel call per piece
+        (the kernel is chunk-invariant — the same transitions, and the same crossing instants,
+        since the sample before a piece's first is the one the previous piece ended on) for
+        one call's overhead instead of one per stats window. Otherwise piece by piece."""
+        out: list[Tagged] = []
+        if not stops:
+            return self._segment(t, v, y, a, b) if b > a else out
+        if b <= a or self.in_fault or self.rise_s != 0.0 or self.fall_s != 0.0:
+            for ev in stops:
+                if ev[0] > a:
+                    out.extend(self._segment(t, v, y, a, ev[0]))
+                    a = ev[0]
+                out.extend(self._stop(ev, t, y))
+            if b > a:
+                out.extend(self._segment(t, v, y, a, b))
+            return out
+        ts, ys = t[a:b], y[a:b]
+        low, high = self.band.low, self.band.high
+        st = self.dwell
+        level0 = st.level
+        tr, level_end = hysteresis(ys, low, high, level0)
+        idx, lev = tr.index, tr.level
+        i_init = int(idx[0]) if tr.initial else -1
+        first = 1 if tr.initial else 0  # the transitions from here on are edges
+        tc = crossing_times(ts, ys, idx[first:], lev[first:], low, high, st.prev_t, st.prev_x)
+        # per piece: how many transitions (the initial state included) lie before its end
+        ends = [ev[0] - a for ev in stops] + [b - a]
+        cuts = np.searchsorted(idx, ends, side="left").tolist()
+        pos = e0 = 0
+        for ev, end, e1 in zip(stops + [None], ends, cuts):
+            if end > pos:
+                self.stats.add_samples(v[a + pos : a + end])
+                if pos <= i_init < end:
+                    out.append(
+                        self._state(a + i_init, float(ts[i_init]), int(lev[0]), float(ys[i_init]))
+                    )
+                lo_e = max(e0, first)
+                if e1 > lo_e:
+                    sel = idx[lo_e:e1]
+                    out.extend(
+                        self._edges(sel + a, tc[lo_e - first : e1 - first], ys[sel], lev[lo_e:e1])
+                    )
+                st.level = int(lev[e1 - 1]) if e1 > 0 else level0
+                pos, e0 = end, e1
+            if ev is not None:
+                out.extend(self._stop(ev, t, y))
+        st.level = level_end
+        st.prev_t, st.prev_x = float(ts[-1]), float(ys[-1])
         return out
 
     def _close_window(self, k: int, t_next: float) -> list[Tagged]:
