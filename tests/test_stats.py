@@ -114,12 +114,22 @@ def test_window_ends_follow_the_quotient_where_rounding_disagrees_with_the_produ
     # A window end found from the product but numbered from the quotient used to stand still
     # there; windows are numbered floor(t / interval) throughout, and each starts where that
     # number changes (numpy.floor and numpy.diff as the reference).
+    # The other way round: 1.43 / 0.13 = 11.0 while 11 × 0.13 = 1.4300000000000002 (the
+    # sample at 1.43 s opens window 11 though it lies below the product).
     assert 0.58 / 0.02 < 29 and 29 * 0.02 == 0.58
+    assert 1.43 / 0.13 == 11.0 and 11 * 0.13 > 1.43
     t = np.arange(400) * 0.005
-    s = ChannelStats("x", interval_s=0.02, center=0.0)
-    got = s.boundaries(t)
-    assert got == (np.flatnonzero(np.diff(np.floor(t / 0.02))) + 1).tolist()
-    assert 116 in got or 117 in got
+    for interval in (0.02, 0.13):
+        s = ChannelStats("x", interval_s=interval, center=0.0)
+        got = s.boundaries(t)
+        assert got == (np.flatnonzero(np.diff(np.floor(t / interval))) + 1).tolist()
+        # in pieces, each starting where the last one stopped, the same ends
+        s = ChannelStats("x", interval_s=interval, center=0.0)
+        pieces = []
+        for a in range(0, 400, 37):
+            pieces += [a + j for j in s.boundaries(t[a : a + 37])]
+            s.window = math.floor(t[min(a + 36, 399)] / interval)  # as close() would leave it
+        assert pieces == got
     # and a whole run on that clock closes one window per quotient step, in any blocks
     cfg = base({"low": -0.5, "high": 0.5}, interval_s=0.02)
     x = np.sin(2 * np.pi * 3.0 * t)

@@ -92,22 +92,28 @@ class ChannelStats:
         out: list[int] = []
         if t.size == 0:
             return out
-        # A sample's window is floor(t / interval), the rule close() uses too. Searching the
-        # window numbers, not t against (k + 1) * interval, keeps the two in agreement where
-        # rounding puts a sample at or past that product but its quotient just below k + 1
-        # (which made this loop stand still).
-        w = np.floor(t / self.interval)
+        # A sample's window is floor(t / interval), the rule close() and ends_by() use too.
+        # The end is searched in t against (k + 1) * interval and then moved to where that
+        # number changes: rounding can put a sample at or past the product with its quotient
+        # just below k + 1 (0.58 / 0.02 = 28.999999999999996, 29 × 0.02 = 0.58), or the other
+        # way round, and a search that disagreed with the numbering stood still.
+        interval = self.interval
         k = self.window
         if k is None:
-            k = math.floor(w[0])
+            k = math.floor(float(t[0]) / interval)
             self.window = k
+        n = t.size
         start = 0
         while True:
-            j = int(np.searchsorted(w[start:], k + 1, side="left")) + start
-            if j >= t.size:
+            j = int(np.searchsorted(t[start:], (k + 1) * interval, side="left")) + start
+            while j < n and math.floor(float(t[j]) / interval) <= k:
+                j += 1
+            while j > start and math.floor(float(t[j - 1]) / interval) > k:
+                j -= 1
+            if j >= n:
                 break
             out.append(j)
-            k = math.floor(w[j])  # skips windows with no samples (gaps)
+            k = math.floor(float(t[j]) / interval)  # skips windows with no samples (gaps)
             start = j
         return out
 
