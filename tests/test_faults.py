@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import numpy as np
@@ -86,3 +87,46 @@ def test_demo_fault_episode(tmp_path):
     assert [f["state"] for f in faults] == ["start", "end"]
     assert faults[0]["t"] == pytest.approx(truth["t_start"], abs=0.01)
     assert faults[1]["t"] == pytest.approx(truth["t_end"], abs=0.01)
+
+
+def test_a_scaled_value_beyond_any_number_is_a_fault_not_a_crash():
+    # 1e308 is a finite double (IEEE 754: the largest is about 1.798e308), so a parser passes
+    # it; times a gain of 10 it overflows to inf, which no filter, noise estimate or comparator
+    # can take. It is a sensor fault like one beyond the limits: a fault record, the level held,
+    # the stream goes on — in any blocks (with no prefilter the channel may be conditioned
+    # later in small blocks, which must not carry the overflow past its record).
+    t = np.arange(0, 12.0, 0.01)
+    x = np.sign(np.sin(2 * np.pi * 0.5 * t)) * 0.8
+    x[650] = 1e308  # mid-plateau (t = 6.5 s)
+    assert math.isinf(1e308 * 10.0)
+    # channel b (a prefilter: never deferred) records in place beside it, so a deferred
+    # fault record of a would come out of order
+    c = {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0},
+         "channel": [{"name": "a", "column": "x", "gain": 10.0, "band": {"low": -1.0, "high": 1.0}},
+                     {"name": "b", "column": "y", "band": {"low": -0.5, "high": 0.5},
+                      "filter": {"kind": "moving_average", "window": 2}}],
+         "stats": {"interval_s": 1.0, "noise_window_s": 1.0, "noise_refresh_s": 1.0}}
+    y = np.sign(np.sin(2 * np.pi * 0.9 * t + 0.3))
+
+    def run2(x: np.ndarray, chunk: int | None = None) -> list[dict]:
+        p = Pipeline(config_from_dict(c), ["t", "x", "y"])
+        rows = np.column_stack([t, x, y])
+        step = chunk or len(rows)
+        out: list[dict] = []
+        for a in range(0, len(rows), step):
+            out += p.process(rows[a : a + step])
+        return out + p.finish()
+
+    whole = run2(x)
+    faults = [r for r in whole if r["kind"] == "fault"]
+    assert [(f["channel"], f["state"]) for f in faults] == [("a", "start"), ("a", "end")]
+    assert faults[0]["t"] == pytest.approx(6.5) and faults[1]["duration_s"] == pytest.approx(0.01)
+    assert "beyond any number" in faults[0]["reason"]
+    # the fault changes no level: the same edges as without the reading
+    clean = x.copy()
+    clean[650] = clean[649]
+    edges = [r for r in whole if r["kind"] == "edge" and r["channel"] == "a"]
+    assert edges == [r for r in run2(clean) if r["kind"] == "edge" and r["channel"] == "a"]
+    assert len(edges) > 10
+    for chunk in (1, 7, 250):
+        assert run2(x, chunk) == whole

@@ -13,6 +13,7 @@ and sample times; between them the comparator kernels run over whole segments.
 from __future__ import annotations
 
 import copy
+import math
 from typing import Any
 
 import numpy as np
@@ -104,12 +105,23 @@ class ChannelConditioner:
         if n == 0:
             return []
         raw = np.asarray(raw, dtype=np.float64)
-        v = raw * self.gain + self.offset if (self.gain != 1.0 or self.offset != 0.0) else raw
+        bad = self.cfg.fault.mask(raw) if self.cfg.fault is not None else None
+        if self.gain != 1.0 or self.offset != 0.0:
+            with np.errstate(over="ignore", invalid="ignore"):
+                v = raw * self.gain + self.offset
+            # a raw reading near the largest double times the gain (or plus the offset) is
+            # beyond any number: no level either, so it is a fault like one beyond the limits
+            over = ~np.isfinite(v)
+            if over.any():
+                bad = over if bad is None else bad | over
+        else:
+            v = raw
         # events inside the block: (sample index, order, payload); at one index: the stats
         # window closes first, then a fault starts or ends, then a noise estimate applies
         events: list[tuple[int, int, Any]] = []
-        if self.cfg.fault is not None:
-            bad = self.cfg.fault.mask(raw)
+        if bad is not None or self.in_fault:
+            if bad is None:
+                bad = np.zeros(n, dtype=bool)
             flips = np.flatnonzero(bad[1:] != bad[:-1]) + 1
             if bool(bad[0]) != self.in_fault:
                 flips = np.concatenate((np.zeros(1, np.int64), flips))
@@ -281,7 +293,7 @@ class ChannelConditioner:
         return out
 
     def _fault_change(self, k: int, t: float, value: float, starts: bool) -> Tagged:
-        lo, hi = self.fault_limits  # type: ignore[misc]
+        lo, hi = self.fault_limits or (-math.inf, math.inf)
         st = self.dwell
         if starts:
             self.in_fault = True
@@ -289,8 +301,13 @@ class ChannelConditioner:
             # no interpolation across the fault, and a dwell candidate is void
             st.prev_t = st.prev_x = float("nan")
             st.pend_class = -1
-            why = f"at or below {lo:g}" if value <= lo else f"at or above {hi:g}"
-            rec = records.fault_start(self.name, t, value, f"raw value {why}: a sensor fault, not a level")
+            if value <= lo:
+                why = f"raw value at or below {lo:g}"
+            elif value >= hi:
+                why = f"raw value at or above {hi:g}"
+            else:
+                why = f"raw value {value:g} scaled by gain and offset is beyond any number"
+            rec = records.fault_start(self.name, t, value, f"{why}: a sensor fault, not a level")
         else:
             self.in_fault = False
             rec = records.fault_end(self.name, t, value, t - self.fault_t0)
