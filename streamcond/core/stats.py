@@ -92,7 +92,7 @@ class ChannelStats:
         out: list[int] = []
         if t.size == 0:
             return out
-        # A sample's window is floor(t / interval), the rule close() and ends_by() use too.
+        # A sample's window is window_of(t) = floor(t / interval), here as everywhere.
         # The end is searched in t against (k + 1) * interval and then moved to where that
         # number changes: rounding can put a sample at or past the product with its quotient
         # just below k + 1 (0.58 / 0.02 = 28.999999999999996, 29 × 0.02 = 0.58), or the other
@@ -100,27 +100,32 @@ class ChannelStats:
         interval = self.interval
         k = self.window
         if k is None:
-            k = math.floor(float(t[0]) / interval)
+            k = self.window_of(float(t[0]))
             self.window = k
         n = t.size
         start = 0
         while True:
             j = int(np.searchsorted(t[start:], (k + 1) * interval, side="left")) + start
-            while j < n and math.floor(float(t[j]) / interval) <= k:
+            while j < n and self.window_of(float(t[j])) <= k:
                 j += 1
-            while j > start and math.floor(float(t[j - 1]) / interval) > k:
+            while j > start and self.window_of(float(t[j - 1])) > k:
                 j -= 1
             if j >= n:
                 break
             out.append(j)
-            k = math.floor(float(t[j]) / interval)  # skips windows with no samples (gaps)
+            k = self.window_of(float(t[j]))  # skips windows with no samples (gaps)
             start = j
         return out
+
+    def window_of(self, t: float) -> int:
+        """The number k of the window [k·I, (k+1)·I) that holds the sample time ``t``: the one
+        statement of the rule (window ends, the quiet test and close() all number by it)."""
+        return math.floor(t / self.interval)
 
     def ends_by(self, t: float) -> bool:
         """Does the current window end at or before the sample time ``t`` (or is there none
         yet)? By the window numbers, as :meth:`boundaries` finds the ends."""
-        return self.window is None or math.floor(t / self.interval) != self.window
+        return self.window is None or self.window_of(t) != self.window
 
     def window_bounds(self) -> tuple[float, float]:
         assert self.window is not None
@@ -139,7 +144,7 @@ class ChannelStats:
         """Emit the record of the current window (at the sample ``t_next``), start the next."""
         assert self.window is not None
         rec = self._record(low, high) if (self.samples or self.fault_samples) else None
-        self.window = math.floor(t_next / self.interval)
+        self.window = self.window_of(t_next)
         self._reset_counts()
         return rec
 
