@@ -119,9 +119,9 @@ class ChannelConditioner:
         # events inside the block: (sample index, order, payload); at one index: the stats
         # window closes first, then a fault starts or ends, then a noise estimate applies
         events: list[tuple[int, int, Any]] = []
-        if bad is not None or self.in_fault:
-            if bad is None:
-                bad = np.zeros(n, dtype=bool)
+        if bad is None and self.in_fault:
+            bad = np.zeros(n, dtype=bool)  # an overflow fault that ends at this block's start
+        if bad is not None:
             flips = np.flatnonzero(bad[1:] != bad[:-1]) + 1
             if bool(bad[0]) != self.in_fault:
                 flips = np.concatenate((np.zeros(1, np.int64), flips))
