@@ -12,6 +12,7 @@ import json
 import math
 import subprocess
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -174,6 +175,22 @@ def test_scale_and_offset_equivariance() -> None:
     moved = estimate_noise(-4.0 * x + 123.0, FS)
     assert moved.sigma == pytest.approx(4.0 * base.sigma, rel=1e-9)
     assert moved.nu0_hz == pytest.approx(base.nu0_hz, rel=1e-9)
+
+
+@pytest.mark.parametrize("factor", [2.0**600, 2.0**-600, 1e300, 1e-300])
+def test_records_far_from_unit_scale_are_measured_not_overflowed(factor: float) -> None:
+    # The same equivariance where the fit's squares would leave the doubles (IEEE 754 binary64:
+    # normal numbers from 2^-1022 to about 2^1024): (1e300)² overflows, (1e-300)² underflows
+    # to 0, which once made the record look "without variation" (σ̂ = 0). White noise of σ = SIGMA
+    # scaled by the factor has σ = factor·SIGMA (definition of the standard deviation).
+    x = white(20_000, np.random.default_rng(5))
+    base = estimate_noise(x, FS)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow or underflow warning either
+        far = estimate_noise(factor * x, FS)
+    assert far.sigma == pytest.approx(factor * base.sigma, rel=1e-12)
+    assert far.sigma == pytest.approx(factor * SIGMA, rel=0.03)
+    assert far.nu0_hz == pytest.approx(base.nu0_hz, rel=1e-12) and far.reliable
 
 
 # ---------------------------------------------------------------------------------------------

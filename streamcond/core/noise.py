@@ -214,6 +214,10 @@ _LEAP_SHARE = 0.6
 #: A first difference standing this many robust sigmas off its local median is a step
 #: candidate (steps smaller than this are left to the segment votes).
 _STEP_Z = 10.0
+#: Records whose largest magnitude exceeds this (or lies below its inverse) are scaled by a power
+#: of two first: squares of 2^±400 and their sums over any window stay far inside the normal
+#: doubles (2^-1022 to about 2^1024).
+_BIG = 2.0**400
 #: Two step heights agree (the same transition of a multi-level signal) when they differ by
 #: less than this many robust sigmas of the local height error.
 _HEIGHT_Z = 5.0
@@ -674,6 +678,16 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
         raise ValueError(f"The noise estimate needs at least {MIN_SAMPLES} samples, got {a.size}.")
     if not np.isfinite(a).all():
         raise ValueError("The noise estimate needs finite samples (split the record at gaps).")
+    top = float(np.max(np.abs(a)))
+    if top > _BIG or 0.0 < top < 1.0 / _BIG:
+        # The fit squares its residuals: beyond 2^400 their sums could overflow, below 2^-400
+        # they would underflow to nothing (a "record without variation"). Scaling by
+        # a power of two is exact in binary floating point and every step of the estimate
+        # scales with it (σ̂ with the factor, ν0 not at all), so the record is brought to a
+        # largest magnitude in [0.5, 1) and σ̂ scaled back.
+        e = math.frexp(top)[1]
+        est = estimate_noise(np.ldexp(a, -e), fs)
+        return NoiseEstimate(math.ldexp(est.sigma, e), est.nu0_hz, est.reliable, est.reason)
 
     a, steps = _destep(a)
     # Variation within a few units in the last place of the samples is rounding in the fit,
