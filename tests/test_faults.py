@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import json
 import math
+import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
 
+from streamcond import records
 from streamcond.config import config_from_dict, load_config
 from streamcond.core.pipeline import Pipeline
 from streamcond.replay import run_replay
@@ -130,3 +132,64 @@ def test_a_scaled_value_beyond_any_number_is_a_fault_not_a_crash():
     assert len(edges) > 10
     for chunk in (1, 7, 250):
         assert run2(x, chunk) == whole
+
+
+def _json(recs: list[dict]) -> list[str]:
+    # compared as written: a fault record's value of NaN is null, and NaN != NaN in a dict
+    return [records.to_json(r) for r in recs]
+
+
+def test_a_level_no_sensor_measures_is_a_fault_and_the_filter_lives_on():
+    # 1e308 and ±1.7e308 are finite doubles (IEEE 754 binary64: the largest is about
+    # 1.798e308), so a parser passes them. Without a gain they used to reach the channel: an
+    # IIR lowpass rang for seconds after one (and the pair overflows its state to ±inf, then
+    # inf - inf = NaN), a moving average summed to inf, which stopped the replay with a
+    # traceback from the noise tracker. A level beyond ±1e150 is a fault, like NaN: a record,
+    # the level held, the filter never sees it.
+    t = np.arange(0, 12.0, 0.01)
+    rng = np.random.default_rng(4)
+    clean = np.sign(np.sin(2 * np.pi * 0.5 * t)) * 0.8 + 0.01 * rng.standard_normal(t.size)
+    x = clean.copy()
+    x[650] = 1e308  # mid-plateau (t = 6.5 s)
+    x[820], x[821] = -1.7e308, 1.7e308  # t = 8.2 s
+    x[300:303] = np.nan  # t = 3.0 s
+    filters = [{"kind": "lowpass", "cutoff_hz": 5.0, "order": 2},
+               {"kind": "moving_average", "window": 4}, {"kind": "ema", "tau_s": 0.05},
+               {"kind": "none"}]
+    c = {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0},
+         "channel": [{"name": f"c{i}", "column": "x", "band": {"low": -0.4, "high": 0.4},
+                      "filter": f} for i, f in enumerate(filters)]
+         + [{"name": "ad", "column": "x", "band": {"mode": "adaptive", "center": 0.0,
+                                                   "window_s": 2.0, "initial_width": 0.5}}],
+         "stats": {"interval_s": 1.0, "noise_window_s": 1.0, "noise_refresh_s": 1.0}}
+
+    def go(x: np.ndarray, chunk: int | None = None) -> list[dict]:
+        p = Pipeline(config_from_dict(c), ["t", "x"])
+        rows = np.column_stack([t, x])
+        step = chunk or len(rows)
+        out: list[dict] = []
+        for a in range(0, len(rows), step):
+            out += p.process(rows[a : a + step])
+        return out + p.finish()
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow warning on the way either
+        whole = go(x)
+        for chunk in (1, 7, 250):
+            assert _json(go(x, chunk)) == _json(whole)
+    names = [ch["name"] for ch in c["channel"]]
+    for name in names:
+        faults = [r for r in whole if r["kind"] == "fault" and r["channel"] == name]
+        assert [(f["state"], round(f["t"], 6)) for f in faults] == [
+            ("start", 3.0), ("end", 3.03), ("start", 6.5), ("end", 6.51),
+            ("start", 8.2), ("end", 8.22)]
+        assert "not a number" in faults[0]["reason"] and "1e+150" in faults[2]["reason"]
+    # the faults change no level: every channel's edges are those of the clean signal, within
+    # the few samples a filter skipped (a fault leaves its state as it was)
+    ref = go(clean)
+    for name in names:
+        got = [(r["edge"], r["t"]) for r in whole if r["kind"] == "edge" and r["channel"] == name]
+        want = [(r["edge"], r["t"]) for r in ref if r["kind"] == "edge" and r["channel"] == name]
+        assert len(got) == len(want) == 11, name
+        for (e1, t1), (e2, t2) in zip(got, want):
+            assert e1 == e2 and t1 == pytest.approx(t2, abs=0.05), name

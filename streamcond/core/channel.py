@@ -13,13 +13,13 @@ and sample times; between them the comparator kernels run over whole segments.
 from __future__ import annotations
 
 import copy
-import math
 from typing import Any
 
 import numpy as np
 
 from .. import records
 from ..config import Channel, Stats
+from . import levels
 from .band import make_band
 from .comparator import DwellState, crossing_times, hysteresis, qualified_hysteresis
 from .filters import StreamFilter, make_filter
@@ -79,7 +79,6 @@ class ChannelConditioner:
         self.fall_s = float(cfg.dwell.fall_s)
         self.dwell = DwellState()
         self._pending_noise: tuple[float, float, bool, str | None, float] | None = None
-        self.fault_limits = cfg.fault.limits if cfg.fault is not None else None
         self.in_fault = False
         self.fault_t0 = float("nan")
         if cfg.measure is not None:
@@ -105,17 +104,9 @@ class ChannelConditioner:
         if n == 0:
             return []
         raw = np.asarray(raw, dtype=np.float64)
-        bad = self.cfg.fault.mask(raw) if self.cfg.fault is not None else None
-        if self.gain != 1.0 or self.offset != 0.0:
-            with np.errstate(over="ignore", invalid="ignore"):
-                v = raw * self.gain + self.offset
-            # a raw reading near the largest double times the gain (or plus the offset) is
-            # beyond any number: no level either, so it is a fault like one beyond the limits
-            over = ~np.isfinite(v)
-            if over.any():
-                bad = over if bad is None else bad | over
-        else:
-            v = raw
+        # a raw value at or beyond the fault limits, or one whose level no sensor measures
+        # (beyond ±LEVEL_LIMIT, or not a number), is a fault: see levels
+        v, bad = levels.scale(raw, self.gain, self.offset, self.cfg.fault)
         # events inside the block: (sample index, order, payload); at one index: the stats
         # window closes first, then a fault starts or ends, then a noise estimate applies
         events: list[tuple[int, int, Any]] = []
@@ -293,7 +284,6 @@ class ChannelConditioner:
         return out
 
     def _fault_change(self, k: int, t: float, value: float, starts: bool) -> Tagged:
-        lo, hi = self.fault_limits or (-math.inf, math.inf)
         st = self.dwell
         if starts:
             self.in_fault = True
@@ -301,12 +291,7 @@ class ChannelConditioner:
             # no interpolation across the fault, and a dwell candidate is void
             st.prev_t = st.prev_x = float("nan")
             st.pend_class = -1
-            if value <= lo:
-                why = f"raw value at or below {lo:g}"
-            elif value >= hi:
-                why = f"raw value at or above {hi:g}"
-            else:
-                why = f"raw value {value:g} scaled by gain and offset is beyond any number"
+            why = levels.reason(value, self.gain, self.offset, self.cfg.fault)
             rec = records.fault_start(self.name, t, value, f"{why}: a sensor fault, not a level")
         else:
             self.in_fault = False

@@ -12,7 +12,6 @@ No I/O, no clocks: the replay command and the live daemon both drive this class.
 
 from __future__ import annotations
 
-import math
 from typing import Any
 
 import numpy as np
@@ -20,6 +19,7 @@ import numpy as np
 from .. import records
 from ..config import Config
 from ..io.lineparse import HOST_T
+from . import levels
 from .channel import ChannelConditioner
 from .timebase import Timebase
 
@@ -386,8 +386,8 @@ def _keeps_side(ch: ChannelConditioner, level: int, a: float, b: float) -> bool:
         a, b = a * g + ch.offset, b * g + ch.offset
         if g < 0:
             a, b = b, a
-        if not (math.isfinite(a) and math.isfinite(b)):
-            return False  # a scaled value beyond any number is a fault (a record)
+    if not levels.within(a, b):
+        return False  # a level no sensor measures is a fault (a record)
     if level == 1:
         return a >= low
     return b <= high

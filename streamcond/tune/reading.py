@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 
 from ..config import Channel, Config
+from ..core import levels
 from ..errors import ConfigError, InputError
 
 
@@ -16,8 +17,8 @@ from ..errors import ConfigError, InputError
 class ChannelData:
     """One channel of a recording, as the pipeline sees it.
 
-    With a ``fault`` setting, samples whose raw value is at or beyond the fault limits are not
-    levels: as in the channel chain, the prefilter, the noise estimate and the comparator see
+    Samples that are sensor faults (a raw value at or beyond the ``fault`` limits, or a level no
+    sensor measures: :mod:`streamcond.core.levels`) are not levels: as in the channel chain, the prefilter, the noise estimate and the comparator see
     only the other samples (``good``), and ``y`` is NaN at the fault samples.
     """
 
@@ -133,17 +134,16 @@ def read_channels(
     for j, channel in enumerate(channels):
         raw = np.ascontiguousarray(raws[:, j])
         good: np.ndarray | None = None
-        if channel.fault is not None:
-            bad_s = channel.fault.mask(raw)
-            if bad_s.any():
-                good = np.flatnonzero(~bad_s)
+        # the fault rule of the channel itself: limits, and levels no sensor measures
+        v, bad_s = levels.scale(raw, float(channel.gain), float(channel.offset), channel.fault)
+        if bad_s is not None and bad_s.any():
+            good = np.flatnonzero(~bad_s)
         n_good = raw.size if good is None else good.size
         if n_good < MIN_SAMPLES:
             raise InputError(
                 f"The recording {str(recording)!r} has {n_good} usable samples of channel "
                 f"{channel.name!r}; tune needs at least {MIN_SAMPLES}"
             )
-        v = raw * float(channel.gain) + float(channel.offset)
         filt = build_filter(channel, fs)
         if good is None:
             y = filt.process(v)

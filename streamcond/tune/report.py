@@ -47,8 +47,9 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
     )
     if res.fault_samples:
         L.append(
-            f"{res.fault_samples:,} samples at the sensor-fault limits were left out, as the "
-            f"channel leaves them out (no filter, noise estimate or comparator sees them)."
+            f"{res.fault_samples:,} samples are sensor faults (at the fault limits, or levels no "
+            f"sensor measures) and were left out, as the channel leaves them out (no filter, "
+            f"noise estimate or comparator sees them)."
         )
     if res.reliable:
         L.append(
