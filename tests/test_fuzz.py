@@ -5,9 +5,7 @@ a clean file holding only those rows."""
 from __future__ import annotations
 
 import json
-import os
 import time
-from pathlib import Path
 
 import pytest
 

@@ -6,11 +6,9 @@ from __future__ import annotations
 import json
 
 import numpy as np
-import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from streamcond.errors import InputError
 from streamcond.io.lineparse import LineParser
 
 

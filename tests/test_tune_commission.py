@@ -6,7 +6,6 @@ signals, a pseudo-terminal as the port and a TOML parser as the judge of the wri
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import subprocess
 import sys

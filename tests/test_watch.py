@@ -8,7 +8,6 @@ import json
 import shutil
 import subprocess
 import sys
-import time
 import uuid
 from pathlib import Path
 

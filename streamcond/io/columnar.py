@@ -16,7 +16,6 @@ Memory: one batch (``batch_rows``) of the needed columns at a time, whatever the
 
 from __future__ import annotations
 
-import json
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any

@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 
-from .analysis import EDGE_MARGIN_SIGMA, TuneResult
+from .analysis import TuneResult
 from .numbers import inline_table
 from .rice import rice_rate_per_hour
 

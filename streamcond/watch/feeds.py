@@ -44,8 +44,6 @@ def dispatch(model: WatchModel, prefix: str, topic: str, payload: bytes, now: fl
 
 async def mqtt_feed(cfg: Config, model: WatchModel) -> None:
     """Subscribe to ``<prefix>/#`` and feed the model until cancelled; reconnects by itself."""
-    import aiomqtt
-
     from ..probe import observer_client, observer_credentials
 
     mq = cfg.output.mqtt
