@@ -98,6 +98,10 @@ def open_recording(
     # (the parser is driven by that one reader alone, so the records are the same)
     how = prefetch.choose(parser.reader, kind, os.path.getsize(recording))
     if how == "process":  # the early reader when `replay` started one (start_early)
+        # numpy's reader parses a CSV block in about twice the time the block's conditioning
+        # takes: the child then leaves the last part of each block for this process to parse
+        # (the share that evens the two sides out, measured as it goes)
+        parser.sharing = fn is read_blocks and parser.fmt == "csv" and parser.reader == "numpy"
         blocks = prefetch.read_job_in_child(fn, args, parser, str(recording))
     else:
         blocks = fn(*args)

@@ -218,9 +218,10 @@ def test_stopping_the_child_early_leaves_no_process():
 MODES = ["off", "thread", "process"]
 
 
-def _cli_replay(tmp_path, rec, cfg, mode, reader="numpy"):
+def _cli_replay(tmp_path, rec, cfg, mode, reader="numpy", share=""):
     out = tmp_path / f"{rec.stem}.{mode}.{reader}.jsonl"
-    env = {**os.environ, "STREAMCOND_READ_AHEAD": mode, "STREAMCOND_CSV_READER": reader}
+    env = {**os.environ, "STREAMCOND_READ_AHEAD": mode, "STREAMCOND_CSV_READER": reader,
+           "STREAMCOND_SHARE": share}
     r = subprocess.run(
         [sys.executable, "-m", "streamcond", "replay", str(rec), "-c", str(cfg), "--events",
          str(out), "--force", "--no-progress"],
@@ -249,10 +250,12 @@ def test_fuzzed_files_give_the_same_bytes_in_every_mode(fmt, tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text(config(fmt))
     runs = {m: _cli_replay(tmp_path, rec, cfg, m) for m in MODES}
+    # and a child that leaves half of every block (after the first) to the replay
+    runs["shared"] = _cli_replay(tmp_path, rec, cfg, "process", share="0.5")
     code, err, body, summary = runs["off"]
     assert code == 0, err
     assert summary[0]["bad_lines"] == fz.bad and summary[0]["rows"] == fz.valid
-    for m in ("thread", "process"):
+    for m in ("thread", "process", "shared"):
         assert runs[m][0] == code, m
         assert runs[m][2] == body, m
         assert runs[m][3] == summary, m
@@ -417,3 +420,51 @@ def _cmdline(proc: Path, needle: str) -> bool:
         return needle in (proc / "cmdline").read_bytes().decode(errors="replace")
     except OSError:
         return False
+
+
+# -- a block shared with the consumer ------------------------------------------------------------
+
+
+def _parse_all(path: Path, sharing: bool, block_bytes: int):
+    """Every item of a CSV read (rows, line numbers, bad count and examples of each) and the
+    parser's state at the end; ``sharing``: read in a child that leaves part of each block to
+    this process."""
+    from fuzz_lines import MAX_LINE
+
+    from streamcond.io.lineparse import LineParser
+    from streamcond.io.prefetch import SYNCED
+    from streamcond.io.recording import read_blocks
+
+    parser = LineParser("csv", needed=["t", "a", "b"], max_line_bytes=MAX_LINE, reader="numpy")
+    blocks = read_blocks(path, parser, block_bytes)
+    if sharing:
+        parser.sharing = True
+        blocks = read_in_child(blocks, parser)
+    items = [(p.rows.tolist(), p.lines.tolist(), p.bad, list(p.examples)) for p, _, _ in blocks]
+    return items, {k: getattr(parser, k) for k in SYNCED}, parser._absorbed is not None
+
+
+@needs_fork
+@pytest.mark.parametrize("share", ["0.5", "0.9", "0.13"])
+@pytest.mark.parametrize("junk", [0.2, 0.0004])
+def test_the_part_a_reader_child_leaves_is_parsed_as_one_parser_would(share, junk, tmp_path,
+                                                                      monkeypatch):
+    """The reader child leaves the last part of each CSV block to the consumer (numpy's reader
+    is the slower side): every item must carry the rows, line numbers, bad-line count and
+    messages one parser reading the whole file gives, and the parser's counts at the end must
+    be its counts — with bad lines of every kind and repeated headers in the left parts, and
+    (few bad lines) the limit of five messages reached inside a left part or a child's part."""
+    from fuzz_lines import make
+
+    from streamcond.io.prefetch import SHARE_ENV
+
+    fz = make("csv", 20_000, seed=11, junk_share=junk)
+    path = tmp_path / "dirty.csv"
+    path.write_bytes(fz.data)
+    want_items, want_state, _ = _parse_all(path, False, 16_384)
+    assert want_state["bad"] == fz.bad and want_state["repeated_headers"] > 0
+    monkeypatch.setenv(SHARE_ENV, share)
+    got_items, got_state, shared = _parse_all(path, True, 16_384)
+    assert shared  # parts were left to this process
+    assert got_state == want_state
+    assert got_items == want_items

@@ -73,6 +73,28 @@ class Parsed:
     examples: list[str] = field(default_factory=list)
     #: line number (1-based, over the whole stream) of each row
     lines: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    #: the block's last lines, left for the consumer to parse (see :class:`Share`)
+    share: Share | None = None
+
+
+@dataclass
+class Share:
+    """The last lines of a block, left unparsed by a reader process for its consumer, which
+    would otherwise wait for it (:meth:`LineParser.absorb`). ``body`` is whole lines, the first
+    of them line ``first_line``; the reader has counted them (every path counts a block's
+    lines by its line ends), and nothing else about them."""
+
+    body: np.ndarray  # uint8: crosses in a shared slot, not through the pipe
+    first_line: int
+
+
+@dataclass
+class _Absorbed:
+    """What a consumer's parser found in the parts a reader child left it (see absorb)."""
+
+    seen: int  # examples of the child's taken so far
+    bad: int = 0
+    repeated_headers: int = 0
 
 
 class _BadLine(Exception):
@@ -146,6 +168,13 @@ class LineParser:
         self.repeated_headers = 0
         self.examples: list[str] = []
         self.header_line: str | None = None
+        #: Reading in a child process for a consumer that would wait for it (the replay sets
+        #: it where the numpy reader is slower than the conditioning): the child may leave the
+        #: last part of a CSV block to the consumer. ``share_of`` (set in the child) gives the
+        #: fraction of each block to leave, from the measured costs of both sides.
+        self.sharing = False
+        self.share_of = None
+        self._absorbed: _Absorbed | None = None  # consumer side, once a share came
 
     # -- public -----------------------------------------------------------------------------
     def feed(self, data: bytes) -> Parsed:
@@ -168,7 +197,14 @@ class LineParser:
         else:
             body = data
         self._tail = data[cut + 1 :]
-        out = self._parse_block(body)
+        share = self._share_point(body)
+        if share is None:
+            out = self._parse_block(body)
+        else:
+            out = self._parse_block(body[:share])
+            rest = np.frombuffer(body, np.uint8, offset=share)
+            out.share = Share(rest, self.lines + 1)
+            self.lines += body.count(b"\n", share)
         extra = self._check_tail()
         if extra.bad:
             out.bad += extra.bad
@@ -219,13 +255,85 @@ class LineParser:
     def _too_long(self, n: int) -> bool:
         return self.max_line is not None and n > self.max_line
 
+    def _share_point(self, body: bytes) -> int | None:
+        """Where the part of ``body`` left to the consumer starts (after a line end), or None:
+        only in a reader child asked to share (:attr:`share_of`), for CSV once the header has
+        come (a header line in the left part could then only be a repeat or a bad line,
+        which the consumer counts), and never beside an over-long unterminated tail (its
+        message must follow the block's)."""
+        if self.share_of is None or self.fmt != "csv" or self.header_line is None:
+            return None
+        if self._tail_too_long():
+            return None
+        f = self.share_of(len(body))
+        if not f > 0:
+            return None
+        nl = body.rfind(b"\n", 0, len(body) - int(len(body) * min(f, 1.0)))
+        return nl + 1 if 0 <= nl < len(body) - 1 else None
+
+    def absorb(self, item: object, state: dict) -> None:
+        """Consumer side of a reader child: take the child's parser state after ``item``, and
+        parse the part of the block the child left (:class:`Share`), so that the rows, the
+        counts and the examples are those of one parser reading the whole stream. The child
+        does not know what the left parts held, so from the first one on, their bad lines and
+        repeated headers are added to its counts here, and the examples are merged in the
+        order of the lines (the child's of this item, then the left part's), up to
+        :data:`MAX_EXAMPLES`."""
+        parsed = item[0] if isinstance(item, tuple) and item and isinstance(item[0], Parsed) else None
+        share = parsed.share if parsed is not None else None
+        ab = self._absorbed
+        if share is None and ab is None:
+            for k, v in state.items():
+                setattr(self, k, v)
+            return
+        if ab is None:  # the first share: the counts so far are the child's own
+            ab = self._absorbed = _Absorbed(seen=len(self.examples))
+        keep = self._take_corrected(state, ab)
+        if parsed is not None:
+            parsed.examples = keep
+        if share is not None:
+            assert parsed is not None
+            self._parse_share(parsed, share, ab)
+
+    def _take_corrected(self, state: dict, ab: _Absorbed) -> list[str]:
+        """The child's state plus what the left parts held; returns the child's examples of
+        this item that are within the limit, after those kept before."""
+        new = state["examples"][ab.seen :]
+        ab.seen = len(state["examples"])
+        keep = new[: MAX_EXAMPLES - len(self.examples)]
+        for k, v in state.items():
+            if k != "examples":
+                setattr(self, k, v)
+        self.examples = self.examples + keep
+        self.bad = state["bad"] + ab.bad
+        self.repeated_headers = state["repeated_headers"] + ab.repeated_headers
+        return list(keep)
+
+    def _parse_share(self, parsed: Parsed, share: Share, ab: _Absorbed) -> None:
+        """Parse a left part as this parser would have at its first line, into ``parsed``."""
+        lines_after, bad0, rep0 = self.lines, self.bad, self.repeated_headers
+        self.lines = share.first_line - 1
+        part = self._parse_block(bytes(share.body))
+        self.lines = lines_after
+        ab.bad += self.bad - bad0
+        ab.repeated_headers += self.repeated_headers - rep0
+        parsed.share = None
+        if part.rows.shape[0]:
+            parsed.rows = np.concatenate((parsed.rows.reshape(-1, part.rows.shape[1]), part.rows))
+            parsed.lines = np.concatenate((parsed.lines, part.lines))
+        parsed.bad += part.bad
+        parsed.examples += part.examples
+
+    def _tail_too_long(self) -> bool:
+        t = self._tail
+        return self.max_line is not None and len(t) > self.max_line and not (
+            len(t) == self.max_line + 1 and t.endswith(b"\r")
+        )
+
     def _check_tail(self) -> Parsed:
         """An unterminated line longer than the limit is dropped (and counted) right away.
         A last byte CR may still be the CR of a CRLF, which does not count."""
-        t = self._tail
-        if self.max_line is not None and len(t) > self.max_line and not (
-            len(t) == self.max_line + 1 and t.endswith(b"\r")
-        ):
+        if self._tail_too_long():
             p = self._empty()
             self.lines += 1
             self._note_bad(p, self.lines, f"longer than {self.max_line} bytes, dropped")

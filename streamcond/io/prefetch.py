@@ -18,6 +18,12 @@ its block would have — after every block before it):
 The shared slots are the back-pressure: the child fills a slot only once the replay has taken
 the block out of it, so memory stays bounded by the block size.
 
+Where the child is the slower side (numpy's CSV reader parses a block in about twice the time
+its conditioning takes), it leaves the last part of each block for the consumer to parse
+(:class:`streamcond.io.lineparse.Share`, :meth:`~streamcond.io.lineparse.LineParser.absorb`): the
+share that evens the two sides out (:class:`_Balance`), from the child's measured parse time and
+the consumer's time per block, which the consumer writes into the shared memory.
+
 ``streamcond replay`` forks its reader child *early* (:func:`start_early`), before the config
 is loaded: the child imports the CSV reader (pyarrow, about 30 ms) while the replay loads its
 config (pydantic and the config models, about 60 ms) on the other core, and then waits for its
@@ -35,6 +41,7 @@ import signal
 import struct
 import sys
 import threading
+import time
 from collections.abc import Iterator
 from typing import TypeVar
 
@@ -160,9 +167,12 @@ def _child(blocks: Iterator[T], parser: object, w: int, slots: SharedSlots) -> N
         from . import fastcsv
 
         fastcsv.THREADS = False  # one core parses, the other conditions
+        balance = None
+        if getattr(parser, "sharing", False):
+            balance = parser.share_of = _Balance(slots)  # type: ignore[attr-defined]
         with open(w, "wb") as fh:
             try:
-                for item in blocks:
+                for item in _timed(blocks, balance):
                     _send(fh, ("item", *slots.pack(item), {k: getattr(parser, k) for k in SYNCED}))
                 _send(fh, ("end", None, -1, [], {k: getattr(parser, k) for k in SYNCED}))
             except BrokenPipeError:
@@ -227,6 +237,7 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
 
 def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]:
     ended = False
+    absorb = getattr(parser, "absorb", None)
     try:
         yield None  # type: ignore[misc]  # primed by read_in_child: the finally now always runs
         with fh:
@@ -235,20 +246,97 @@ def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]
                     what, data, slot, sizes, state = _recv(fh)
                 except EOFError:
                     raise RuntimeError("the recording's reader process ended unexpectedly") from None
+                item = slots.unpack(data, slot, sizes) if what == "item" else None
                 if state is not None:
-                    for k, v in state.items():
-                        setattr(parser, k, v)
+                    if absorb is not None:
+                        absorb(item, state)  # parses what the child left, if anything
+                    else:
+                        for k, v in state.items():
+                            setattr(parser, k, v)
                 if what == "end":
                     ended = True
                     return
                 if what == "error":
                     ended = True
                     raise data  # type: ignore[misc]
-                yield slots.unpack(data, slot, sizes)  # type: ignore[misc]
+                t0 = time.perf_counter()
+                yield item  # type: ignore[misc]
+                slots.report_cost(time.perf_counter() - t0)  # the consumer's time per block
     finally:
         fh.close()
         _reap(pid, stop=not ended)
         slots.close()
+
+
+class _Balance:
+    """In the reader child: the share of each block to leave to the consumer, so that both
+    sides take as long per block. With p the child's parse time of a block and c the
+    consumer's time on it (conditioning and writing), leaving a fraction f costs the child
+    (1 - f)·p and the consumer f·p + c: equal at f = (p - c) / 2p, none when the consumer is the
+    slower side. p is measured here on the bytes parsed, c by the consumer (shared memory);
+    both smoothed over blocks, as the machine's speed moves."""
+
+    #: Weight of the newest measurement in the running figures (an exponential average).
+    ALPHA = 0.5
+    #: Never more than this share: the consumer parses with the same reader, so beyond half
+    #: it would become the slower side whatever c is.
+    MAX_SHARE = 0.5
+
+    def __init__(self, slots: SharedSlots) -> None:
+        self.slots = slots
+        self.per_byte: float | None = None  # the child's parse time per byte
+        self.t_last = time.perf_counter()
+        self.bytes_last = 0
+
+    def __call__(self, body_bytes: int) -> float:
+        """The share of a block of ``body_bytes`` to leave (called before it is parsed)."""
+        forced = os.environ.get(SHARE_ENV, "")
+        if forced:
+            try:
+                return float(forced)
+            except ValueError:
+                return 0.0
+        c = self.slots.cost()
+        if self.per_byte is None or c is None:
+            return 0.0
+        p = self.per_byte * body_bytes
+        return min(self.MAX_SHARE, max(0.0, (p - c) / (2.0 * p))) if p > 0 else 0.0
+
+    def parsed(self, nbytes: int, seconds: float) -> None:
+        """The child parsed ``nbytes`` in ``seconds``."""
+        if nbytes <= 0:
+            return
+        rate = seconds / nbytes
+        a = self.ALPHA
+        self.per_byte = rate if self.per_byte is None else a * rate + (1 - a) * self.per_byte
+
+
+def _timed(blocks: Iterator[T], balance: _Balance | None) -> Iterator[T]:
+    """``blocks``, telling ``balance`` how long the child took to read and parse each one (of
+    text blocks, ``(parsed, bytes read so far, size)``: the bytes it parsed are those read
+    minus the part it left)."""
+    if balance is None:
+        yield from blocks
+        return
+    it = iter(blocks)
+    done0 = 0
+    while True:
+        t0 = time.perf_counter()
+        try:
+            item = next(it)
+        except StopIteration:
+            return
+        dt = time.perf_counter() - t0
+        parsed, done = item[0], item[1]  # type: ignore[index]
+        left = parsed.share.body.nbytes if parsed.share is not None else 0
+        balance.parsed(done - done0 - left, dt)
+        done0 = done
+        yield item
+
+
+#: ``STREAMCOND_SHARE=0.3``: leave that share of every block to the consumer (tests; ``0``:
+#: never), instead of the measured balance.
+SHARE_ENV = "STREAMCOND_SHARE"
 
 
 def _reap(pid: int, stop: bool) -> None:

@@ -14,12 +14,14 @@ from __future__ import annotations
 
 import os
 import pickle
+import struct
 
 #: Two slots: the child fills one while the consumer works on the block from the other.
 SLOTS = 2
 #: A slot holds a block's rows: 4 MiB of text makes at most about 5 MiB of float64 rows and
 #: line numbers at the benchmark's line length; shorter lines that make more go by the pipe.
 SLOT_BYTES = 8 << 20
+_COST = struct.Struct("<d")
 
 
 class SharedSlots:
@@ -28,7 +30,9 @@ class SharedSlots:
     def __init__(self) -> None:
         import mmap
 
-        self.mm = mmap.mmap(-1, SLOTS * SLOT_BYTES)  # anonymous and shared: fork keeps it
+        # anonymous and shared (a fork keeps it); after the slots, one float64: the consumer's
+        # time per block (see report_cost)
+        self.mm = mmap.mmap(-1, SLOTS * SLOT_BYTES + _COST.size)
         self.view = memoryview(self.mm)
         self.free_r, self.free_w = os.pipe()
         self.next = 0
@@ -92,6 +96,19 @@ class SharedSlots:
         except BrokenPipeError:
             pass  # the child has sent everything and left
         return pickle.loads(data, buffers=bufs)
+
+    # -- both: the consumer's time per block, for the child's balance (a figure, not a lock:
+    # a stale read only shifts the next block's share a little)
+    def report_cost(self, seconds: float) -> None:
+        """Consumer: the time it took over the last block."""
+        old = self.cost()
+        new = seconds if old is None else 0.5 * seconds + 0.5 * old
+        _COST.pack_into(self.mm, SLOTS * SLOT_BYTES, new)
+
+    def cost(self) -> float | None:
+        """The consumer's time per block (smoothed), None before the first."""
+        v = _COST.unpack_from(self.mm, SLOTS * SLOT_BYTES)[0]
+        return v if v > 0 else None
 
     def close(self) -> None:
         self._close_fd("free_r")
