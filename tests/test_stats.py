@@ -160,3 +160,23 @@ def test_a_quiet_channel_is_not_deferred_past_a_window_end_that_rounding_hides()
     assert [r for r in run(cfg, t, x, chunk=1)] == whole
     stats = [(r["t"], r["channel"]) for r in whole if r["kind"] == "stats"]
     assert stats == sorted(stats, key=lambda s: (s[0], s[1]))
+
+
+def test_a_channel_in_tiny_units_gets_its_stats_not_a_division_by_zero():
+    # σ̂ of 1e-170 (a channel in tiny units, or a gain of 1e-170) is measured, and 2σ² then
+    # underflows to 0 in binary64 (the smallest normal double is about 2.2e-308): Rice's rate
+    # ν0·exp(-h²/2σ²) is taken by the margin h/σ instead, here 1e170: exp(-5e339) = 0.
+    t = np.arange(0, 30, 0.01)
+    x = 1e-170 * np.random.default_rng(0).standard_normal(t.size)
+    assert 2.0 * (1e-170) ** 2 == 0.0
+    c = {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0},
+         "channel": [{"name": "x", "band": {"low": -1.0, "high": 1.0}}],
+         "stats": {"interval_s": 10.0, "noise_window_s": 5.0, "noise_refresh_s": 5.0}}
+    p = Pipeline(config_from_dict(c), ["t", "x"])
+    stats = [r for r in p.process(np.column_stack([t, x])) + p.finish() if r["kind"] == "stats"]
+    measured = [r for r in stats if r["noise_sigma"] is not None]
+    assert measured and all(r["reliable"] for r in measured)
+    for r in measured:
+        assert r["noise_sigma"] == pytest.approx(1e-170, rel=0.05)
+        assert r["margin_sigma"] == pytest.approx(1.0 / r["noise_sigma"])
+        assert r["predicted_false_rate_per_hour"] == 0.0

@@ -168,7 +168,11 @@ class ChannelStats:
         trusted = self.reliable is True
         margin = half / sig if trusted and sig > 0 and math.isfinite(half) else math.nan
         if trusted and sig > 0 and nu0 >= 0 and math.isfinite(half):
-            rate = nu0 * math.exp(-(half * half) / (2.0 * sig * sig)) * 3600.0
+            # Rice: ν0·exp(−h²/2σ²); by the margin h/σ where 2σ² underflows to 0 (σ below about
+            # 1e-154: a channel in tiny units, or a tiny gain), which would divide by zero
+            two_var = 2.0 * sig * sig
+            z = (half * half) / two_var if two_var > 0 else 0.5 * margin * margin
+            rate = nu0 * math.exp(-z) * 3600.0
         else:
             rate = math.nan
         extra: dict[str, Any] = {}
