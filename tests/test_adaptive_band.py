@@ -270,3 +270,32 @@ def test_a_sine_starting_at_its_zero_crossing_gives_no_start_up_burst():
     crossings = np.arange(1, 20)
     assert len(edges) == crossings.size
     assert np.all(np.abs(np.array([e["t"] for e in edges]) - crossings) < 0.05)
+
+
+def test_an_update_held_back_at_a_block_start_is_judged_as_in_one_block():
+    """An estimate completing on a block's last sample applies from the next block's first:
+    if a sensor fault starts right there, the hold-back test must still read the last level
+    before it (as in one block, where it reads the sample before), not the fault's cleared
+    interpolation state — which let the narrow band through and fired an edge that one block,
+    or blocks of one sample, never fire. The level steps from 1.5 to -0.5 inside the wide
+    initial band; the quiet noise asks for a band (±0.03) that would flip it by itself."""
+    from streamcond.core.noise import NoiseTracker
+
+    fs, win = 100.0, 1.5
+    t = np.arange(0, 6, 1 / fs)
+    base = np.where(t < 1.0, 1.5, -0.5) + 0.01 * np.random.default_rng(0).standard_normal(t.size)
+    cfg = config_dict([{"name": "a", "band": {"mode": "adaptive", "center": 0.0,
+                                              "window_s": win, "initial_width": 2.0}}],
+                      columns=["t", "a"], sample_rate_hz=fs) | {"stats": {"interval_s": 100.0}}
+    nt = NoiseTracker(fs, win)
+    checked = 0
+    for n in range(nt.first_n, t.size - 1, nt.update_every):  # each estimate's sample number
+        x = base.copy()
+        x[n] = np.nan  # a fault on the sample after the estimate's last (index n - 1)
+        rows = np.column_stack([t, x])
+        whole = as_json(run_pipeline(cfg, rows))
+        assert as_json(run_pipeline(cfg, rows, [n, t.size - n])) == whole, n
+        checked += 1
+    assert checked > 20
+    # the updates are held back: no edge at all (the level never crosses the wide band)
+    assert not of_kind(run_pipeline(cfg, np.column_stack([t, base])), "edge")

@@ -81,6 +81,11 @@ class ChannelConditioner:
         self._pending_noise: tuple[float, float, bool, str | None, float] | None = None
         self.in_fault = False
         self.fault_t0 = float("nan")
+        # The last conditioned value (NaN at a fault sample), for a noise update applied at the
+        # next block's first sample; unlike dwell.prev_x, which a fault start clears (no
+        # interpolation across a fault), a fault starting at that sample leaves it as in one
+        # block, where the update reads the sample before.
+        self.last_y = float("nan")
         if cfg.measure is not None:
             from .measures import MeasureTracker
 
@@ -169,6 +174,7 @@ class ChannelConditioner:
             else:
                 self._apply_noise(payload, y, k)
         out.extend(self._span(t, v, y, a, n, stops))
+        self.last_y = float(y[-1])
         return out
 
     def _stop(self, ev: tuple[int, int, Any], t: np.ndarray, y: np.ndarray) -> list[Tagged]:
@@ -308,7 +314,7 @@ class ChannelConditioner:
         self.stats.noise(sigma, nu0, reliable, reason, window_s)
         if not reliable:
             return
-        last = y[k - 1] if k > 0 else self.dwell.prev_x
+        last = y[k - 1] if k > 0 else self.last_y
         self.band.propose(sigma, self.dwell.level, float(last))
 
     def _segment(self, t: np.ndarray, v: np.ndarray, y: np.ndarray, a: int, b: int) -> list[Tagged]:
@@ -398,6 +404,7 @@ class ChannelConditioner:
         self.edges = old.edges
         self.dwell = copy.copy(old.dwell)
         self.in_fault, self.fault_t0 = old.in_fault, old.fault_t0
+        self.last_y = old.last_y
         if self.measure is not None and old.measure is not None:
             self.measure.restore(old.measure.snapshot())
         if old.cfg.filter == self.cfg.filter and old.period == self.period:
