@@ -193,6 +193,28 @@ def test_records_far_from_unit_scale_are_measured_not_overflowed(factor: float) 
     assert far.nu0_hz == pytest.approx(base.nu0_hz, rel=1e-12) and far.reliable
 
 
+@pytest.mark.parametrize("glitch", [1e13, 1e149])
+def test_one_glitch_far_above_the_noise_does_not_hide_it(glitch: float) -> None:
+    # The rounding floor (16 ulps of the samples' size, squared) once took the largest sample
+    # as that size: one glitch of 1e13 over noise of σ = 0.01 raised it to
+    # (16 · 2.2e-16 · 1e13)² ≈ 1.3e-3, above σ² = 1e-4, and the record came out "without
+    # variation" (σ̂ = 0, reliable), which would snap an adaptive band to min_width. The glitch
+    # is weighted out of the fit; σ̂ is the noise's σ (definition), within the estimator's 3 %.
+    assert (16 * np.finfo(np.float64).eps * 1e13) ** 2 > 0.01**2
+    x = white(20_000, np.random.default_rng(8)) * (0.01 / SIGMA)
+    x[7_000] = glitch
+    est = estimate_noise(x, FS)
+    assert est.sigma == pytest.approx(0.01, rel=0.03) and est.reliable
+
+
+def test_a_record_near_the_largest_double_says_its_noise_is_beyond_any_number() -> None:
+    # ±M, M the largest binary64 (about 1.8e308): σ is M itself, and σ̂ a little above it
+    # overflows; the answer is inf, marked unreliable, not an OverflowError.
+    big = np.finfo(np.float64).max
+    est = estimate_noise(np.tile([big, -big], 64), FS)
+    assert est.sigma == math.inf and not est.reliable and "beyond any number" in est.reason
+
+
 # ---------------------------------------------------------------------------------------------
 # ν0 and Rice's formula
 

@@ -79,6 +79,8 @@ def _degenerate(n: int, rng: np.random.Generator) -> list[np.ndarray]:
     lvl = 11.0
     one = np.full(n, lvl)
     one[int(rng.integers(0, n))] += 1.0
+    spiked = 0.01 * rng.standard_normal(n)
+    spiked[int(rng.integers(0, n))] = 1e13
     return [
         np.full(n, lvl),  # no variation at all
         lvl + np.spacing(lvl) * rng.integers(-3, 4, n),  # a few ulps: rounding, not noise
@@ -87,6 +89,9 @@ def _degenerate(n: int, rng: np.random.Generator) -> list[np.ndarray]:
         np.arange(n, dtype=float),  # a pure ramp
         1e150 * rng.standard_normal(n),  # huge and tiny scales
         1e-150 * rng.standard_normal(n),
+        1e300 * rng.standard_normal(n),  # beyond 2^±400: scaled by a power of two first
+        1e-300 * rng.standard_normal(n),
+        spiked,  # one glitch far above the noise: it must not set the rounding floor
     ]
 
 

@@ -687,12 +687,19 @@ def estimate_noise(x: ArrayLike, sample_rate_hz: float) -> NoiseEstimate:
         # largest magnitude in [0.5, 1) and σ̂ scaled back.
         e = math.frexp(top)[1]
         est = estimate_noise(np.ldexp(a, -e), fs)
-        return NoiseEstimate(math.ldexp(est.sigma, e), est.nu0_hz, est.reliable, est.reason)
+        try:
+            return NoiseEstimate(math.ldexp(est.sigma, e), est.nu0_hz, est.reliable, est.reason)
+        except OverflowError:  # σ̂ of a record near the largest double can exceed it
+            return NoiseEstimate(math.inf, est.nu0_hz, False, "the noise is beyond any number")
 
     a, steps = _destep(a)
     # Variation within a few units in the last place of the samples is rounding in the fit,
-    # not noise that could be measured.
-    floor = (16.0 * np.finfo(np.float64).eps * float(np.max(np.abs(a)))) ** 2
+    # not noise that could be measured. The samples' size is their 90th percentile, not their
+    # largest: one spike far above the rest (a 1e13 glitch over noise of 0.01) is weighted out
+    # of the fit, and must not raise the floor above the noise (σ̂ = 0, "without variation").
+    mag = np.abs(a)
+    k = (9 * (mag.size - 1)) // 10
+    floor = (16.0 * np.finfo(np.float64).eps * float(np.partition(mag, k)[k])) ** 2
     first = _scale_fit(a, _M_MIN)
     if first.v <= floor:
         return NoiseEstimate(0.0, 0.0)
