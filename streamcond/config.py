@@ -252,7 +252,9 @@ FAULT_PRESETS: dict[str, tuple[float, float]] = {"namur_ne43": (3.6, 21.0)}
 
 class Fault(_Model):
     """Raw values (before gain/offset) at or beyond which the sample is a sensor fault, not a
-    level: while in fault the comparator holds its level and fires no edges."""
+    level: while in fault the comparator holds its level and fires no edges. (A scaled level
+    beyond ±1e150, or not a number, is a fault with or without these limits:
+    :mod:`streamcond.core.levels`.)"""
 
     preset: Literal["namur_ne43"] | None = None
     at_or_below: float | None = None

@@ -375,3 +375,25 @@ def test_cli_unknown_channel_exits_2_naming_the_channels():
     for name in ("tank_high", "pump", "flow"):
         assert name in r.stderr
     assert "Traceback" not in r.stderr
+
+
+def test_tune_leaves_out_levels_no_sensor_measures_in_report_and_picture(tmp_path):
+    # 1e308 and a pair ±1.7e308 are finite doubles (IEEE 754 binary64: the largest is about
+    # 1.798e308) that a parser passes: as in the channel they are faults, left out of the
+    # analysis and drawn as gaps (the pair once broke the plotting library's axis scaling with
+    # a traceback, and no report came out).
+    t = np.arange(0, 60, 0.01)
+    x = 0.8 * np.sign(np.sin(2 * np.pi * t / 10.0)) + 0.05 * np.random.default_rng(3).standard_normal(t.size)
+    x[1234] = 1e308
+    x[3000], x[3001] = -1.7e308, 1.7e308
+    rec = tmp_path / "glitch.csv"
+    rec.write_text("t,x\n" + "".join(f"{a:.2f},{b!r}\n" for a, b in zip(t, x.tolist())))
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[source]\nkind = "file"\ntime_column = "t"\n'
+                   '[[channel]]\nname = "x"\nband = { low = -0.4, high = 0.4 }\n')
+    png = tmp_path / "glitch.png"
+    r = run_cli("tune", str(rec), "-c", str(cfg), "--plot", str(png))
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr and "Warning" not in r.stderr
+    assert "3 samples are sensor faults" in r.stdout
+    assert png.stat().st_size > 10_000

@@ -128,7 +128,7 @@ def from_recording(config_path: str, recording: str, channel: str, configured: b
                 f"--low and --high"
             )
         low, high, src = s.center - s.width / 2.0, s.center + s.width / 2.0, "suggested"
-    v = data.v if data.good is None else data.v[data.good]
+    v = data.vg
     raw_est = estimate_noise(v, data.fs)
     filt_est = estimate_noise(data.yg, data.fs) if hasattr(data, "yg") else None
 

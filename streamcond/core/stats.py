@@ -31,7 +31,8 @@ Fields and where their numbers come from:
   resting at the band centre, an upper bound on false edges (a false edge needs the noise to
   carry the signal past a threshold, and a full false cycle past both).
 * ``fault_s`` — time of the window spent in sensor fault (samples at or beyond the channel's
-  ``fault`` limits, which are not levels); ``samples`` counts the other samples.
+  ``fault`` limits, or levels no sensor measures — :mod:`streamcond.core.levels` — which are
+  not levels); ``samples`` counts the other samples.
 * ``chattering`` — ``chatter_count`` or more activations (rising edges of the output level)
   within ``chatter_window_s``: the common alarm-management criterion of three or more
   activations of one alarm within one minute (ISA-18.2 practice, from memory).

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 import tempfile
 from dataclasses import dataclass
@@ -26,6 +27,8 @@ from .report import format_report
 
 #: Between two channels' reports.
 RULE = "─" * 78
+
+log = logging.getLogger(__name__)
 
 
 def run(
@@ -156,7 +159,16 @@ def main(args: argparse.Namespace, out: TextIO | None = None) -> int:
             from .plot import plot
 
             for pic, (res, data) in zip(pictures, results):
-                plot(res, data, pic.path)
+                try:
+                    plot(res, data, pic.path)
+                except StreamcondError:
+                    raise
+                except Exception as e:  # the plotting library's own failure: one sentence
+                    log.debug("drawing %s failed", pic.path, exc_info=True)
+                    raise InputError(
+                        f"The picture {str(pic.path)!r} could not be drawn "
+                        f"({type(e).__name__}: {e}); the report is complete without it"
+                    ) from None
                 pic.written = True
         except StreamcondError as e:
             plot_error = e

@@ -140,7 +140,8 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
 
     # 1. the whole trace
     step = max(1, t.size // 200_000)  # enough points for the eye, not for the file size
-    ax1.plot(t[::step], data.v[::step], color="0.75", lw=0.6, label="scaled input")
+    vl = data.vl  # fault samples are gaps: they are no level (and may be any number)
+    ax1.plot(t[::step], vl[::step], color="0.75", lw=0.6, label="scaled input")
     ax1.plot(ty[::step], data.y[::step], color="C0", lw=0.8, label="conditioned")
     edges = res.fixed_edge_records
 
@@ -180,20 +181,22 @@ def plot(res: TuneResult, data: ChannelData, path: str | Path) -> None:
     ax1.set_title(f"Whole recording: the edges the suggested band gives{dw}", fontsize=10)
 
     # 2. zoom on the worst chatter of a bare comparator at the centre
-    z0, z1, _densest = worst_chatter(t, data.v, c)
+    tg, vg = data.tg, data.vg
+    z0, z1, _densest = worst_chatter(tg, vg, c)
     sel = (t >= z0) & (t <= z1)
     sely = (ty >= z0) & (ty <= z1)
-    ax2.plot(t[sel], data.v[sel], color="0.6", lw=0.8, marker=".", ms=2, label="scaled input")
+    ax2.plot(t[sel], vl[sel], color="0.6", lw=0.8, marker=".", ms=2, label="scaled input")
     ax2.plot(ty[sely], data.y[sely], color="C0", lw=1.2, label="conditioned")
-    vz = data.v[sel]
+    selg = (tg >= z0) & (tg <= z1)
+    vz, tz = vg[selg], tg[selg]
     fl = np.flatnonzero(np.diff(vz > c)) + 1
-    tz = t[sel]
     if fl.size:
         ax2.plot(tz[fl], np.full(fl.size, c), "|", color="C3", ms=14, mew=1.2, zorder=4)
     ax2.axhline(c, color="k", lw=0.7, ls="--")
     mark_edges(ax2, z0, z1)
     vals = np.concatenate([vz, data.y[sely]]) if sely.any() else vz
-    ylo, yhi = float(np.nanmin(vals)), float(np.nanmax(vals))
+    vals = vals[np.isfinite(vals)]
+    ylo, yhi = (float(vals.min()), float(vals.max())) if vals.size else (c - 1.0, c + 1.0)
     if lo is not None:
         ylo, yhi = min(ylo, lo), max(yhi, hi)
     pad = 0.08 * (yhi - ylo or 1.0)

@@ -261,7 +261,7 @@ def analyse_pulse(
     idx, runs = _runs(y, t, lo_thr, hi_thr)
     bounce, typical = _split_runs(runs)
     real_runs = runs[~bounce]
-    _, raw_runs = _runs(data.v if data.good is None else data.v[data.good], t, lo_thr, hi_thr)
+    _, raw_runs = _runs(data.vg, t, lo_thr, hi_thr)
     raw_bounce, _ = _split_runs(raw_runs)
     bounce_max = float(runs[bounce].max()) if bounce.any() else 0.0
     shortest = float(real_runs.min()) if real_runs.size else math.nan
@@ -431,6 +431,10 @@ def format_pulse_report(res: Any, plot_path: str | None = None) -> str:
         f"({res.duration_s:.1f} s); prefilter {res.filter_text}"
         + (f"; dwell rise {res.dwell[0]:g} s, fall {res.dwell[1]:g} s" if any(res.dwell) else "")
     )
+    if getattr(res, "fault_samples", 0):
+        from .report import fault_sentence
+
+        L.append(fault_sentence(res.fault_samples))
     L.append(
         f"Pulse channel ({p.chosen}: two levels, {p.pulses:,} pulses): the band goes between "
         f"the levels and the dwell is sized from the bounce; the noise sweep and Rice's "
@@ -539,7 +543,7 @@ def plot_pulse(res: Any, data: ChannelData, path: str | Path) -> None:
     t1 = t0 + 12 * per
     sel = (t >= t0) & (t <= t1)
     sely = (ty >= t0) & (ty <= t1)
-    ax1.plot(t[sel], data.v[sel], color="0.6", lw=0.8, marker=".", ms=3, label="scaled input")
+    ax1.plot(t[sel], data.vl[sel], color="0.6", lw=0.8, marker=".", ms=3, label="scaled input")
     ax1.plot(ty[sely], data.y[sely], color="C0", lw=1.2, label="conditioned")
     show_band(ax1, lo, hi)
     er = [r for r in edges if t0 <= r["t"] <= t1]

@@ -17,9 +17,10 @@ from ..errors import ConfigError, InputError
 class ChannelData:
     """One channel of a recording, as the pipeline sees it.
 
-    Samples that are sensor faults (a raw value at or beyond the ``fault`` limits, or a level no
-    sensor measures: :mod:`streamcond.core.levels`) are not levels: as in the channel chain, the prefilter, the noise estimate and the comparator see
-    only the other samples (``good``), and ``y`` is NaN at the fault samples.
+    Samples that are sensor faults (a raw value at or beyond the ``fault`` limits, or a level
+    no sensor measures: :mod:`streamcond.core.levels`) are not levels: as in the channel
+    chain, the prefilter, the noise estimate and the comparator see only the other samples
+    (``good``), and ``y`` is NaN at the fault samples.
     """
 
     cfg: Config
@@ -39,6 +40,20 @@ class ChannelData:
     def yg(self) -> np.ndarray:
         """The conditioned samples the comparator sees (faults left out)."""
         return self.y if self.good is None else self.y[self.good]
+
+    @property
+    def vg(self) -> np.ndarray:
+        """The scaled input at the samples that are levels (faults left out)."""
+        return self.v if self.good is None else self.v[self.good]
+
+    @property
+    def vl(self) -> np.ndarray:
+        """The scaled input with NaN at the fault samples (for pictures: a gap, not a value)."""
+        if self.good is None:
+            return self.v
+        out = np.full(self.v.size, np.nan)
+        out[self.good] = self.v[self.good]
+        return out
 
     @property
     def tg(self) -> np.ndarray:

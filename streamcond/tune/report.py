@@ -27,6 +27,15 @@ def _rate(x: float) -> str:
     return f"{x:.3g}"
 
 
+def fault_sentence(n: int) -> str:
+    """What the report says of a recording's fault samples (level and pulse reports alike)."""
+    return (
+        f"{n:,} samples are sensor faults (at the fault limits, or levels no sensor measures) "
+        f"and were left out, as the channel leaves them out (no filter, noise estimate or "
+        f"comparator sees them)."
+    )
+
+
 def format_report(res: TuneResult, plot_path: str | None = None) -> str:
     """The table and the plain-words recommendation (the default output)."""
     if res.mode == "pulse":
@@ -46,11 +55,7 @@ def format_report(res: TuneResult, plot_path: str | None = None) -> str:
         + (f"; dwell rise {res.dwell[0]:g} s, fall {res.dwell[1]:g} s" if any(res.dwell) else "")
     )
     if res.fault_samples:
-        L.append(
-            f"{res.fault_samples:,} samples are sensor faults (at the fault limits, or levels no "
-            f"sensor measures) and were left out, as the channel leaves them out (no filter, "
-            f"noise estimate or comparator sees them)."
-        )
+        L.append(fault_sentence(res.fault_samples))
     if res.reliable:
         L.append(
             f"Noise of the conditioned signal: σ̂ = {_g(res.sigma)}{u}, zero up-crossing rate "

@@ -8,7 +8,7 @@ import json
 import logging
 import time
 
-from ..config import Config
+from ..config import Channel, Config
 from .model import WatchModel
 
 log = logging.getLogger("streamcond.watch")
@@ -71,6 +71,9 @@ async def mqtt_feed(cfg: Config, model: WatchModel) -> None:
 
 async def port_feed(cfg: Config, model: WatchModel) -> None:
     """Read the port and run the pipeline here, as the daemon would (no outputs)."""
+    import numpy as np
+
+    from ..core import levels
     from ..core.pipeline import Pipeline
     from ..errors import InputError
     from ..io.lineparse import HOST_T
@@ -81,7 +84,7 @@ async def port_feed(cfg: Config, model: WatchModel) -> None:
     parser = make_parser(cfg)
     pipeline: Pipeline | None = None
     source = SerialSource(cfg.source)
-    cols: list[tuple[str, int, float, float]] = []
+    cols: list[tuple[Channel, int]] = []  # (channel config, column index)
     try:
         async for ev in source.events():
             now = time.time()
@@ -111,12 +114,13 @@ async def port_feed(cfg: Config, model: WatchModel) -> None:
                 check_columns(cfg, parser.columns)
                 pipeline = Pipeline(cfg, parser.columns + [HOST_T], host_time=cfg.source.host_time)
                 idx = {c: i for i, c in enumerate(parser.columns)}
-                cols = [(ch.name, idx[ch.source_column], float(ch.gain), float(ch.offset))
-                        for ch in cfg.channel]
+                cols = [(ch, idx[ch.source_column]) for ch in cfg.channel]
             for rec in pipeline.process(parsed.rows):
                 model.on_record(rec, now)
-            for name, i, gain, offset in cols:
-                model.on_values(name, parsed.rows[:, i] * gain + offset, now)
+            for ch, i in cols:
+                # the channel's own levels: a fault sample is no value on the trace
+                v, bad = levels.scale(parsed.rows[:, i], float(ch.gain), float(ch.offset), ch.fault)
+                model.on_values(ch.name, v if bad is None else np.where(bad, np.nan, v), now)
     finally:
         source.stop()
 
