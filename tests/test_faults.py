@@ -25,14 +25,14 @@ def cfg(**ch) -> dict:
     return {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0}, "channel": [base]}
 
 
-def run(c: dict, t, x, chunk=None) -> list[dict]:
+def run(c: dict, t, x, chunk=None, finish=False) -> list[dict]:
     p = Pipeline(config_from_dict(c), ["t", "x"])
     rows = np.column_stack([t, x])
     step = chunk or len(rows)
     out: list[dict] = []
     for a in range(0, len(rows), step):
         out += p.process(rows[a : a + step])
-    return out
+    return out + p.finish() if finish else out
 
 
 @pytest.mark.parametrize(
@@ -164,13 +164,7 @@ def test_a_level_no_sensor_measures_is_a_fault_and_the_filter_lives_on():
          "stats": {"interval_s": 1.0, "noise_window_s": 1.0, "noise_refresh_s": 1.0}}
 
     def go(x: np.ndarray, chunk: int | None = None) -> list[dict]:
-        p = Pipeline(config_from_dict(c), ["t", "x"])
-        rows = np.column_stack([t, x])
-        step = chunk or len(rows)
-        out: list[dict] = []
-        for a in range(0, len(rows), step):
-            out += p.process(rows[a : a + step])
-        return out + p.finish()
+        return run(c, t, x, chunk, finish=True)
 
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # no overflow warning on the way either
