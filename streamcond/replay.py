@@ -22,7 +22,7 @@ from .io import prefetch
 from .io.capture import is_capture, read_capture_blocks
 from .io.eventlog import EventLog
 from .io.lineparse import HOST_T, LineParser
-from .io.recording import DEFAULT_BLOCK_BYTES, read_blocks
+from .io.recording import DEFAULT_BLOCK_BYTES, no_data, read_blocks
 
 log = logging.getLogger(__name__)
 
@@ -324,6 +324,9 @@ def _drive(
             raise InputError(f"The recording {str(recording)!r} holds no data lines")
         for run in runs:
             run.start(parser.columns)
+    if lead.res.rows == 0 and parser.bad == 0 and parser.absorbed:
+        # the reader child left parts of the file to this process and could not tell
+        raise no_data(Path(recording))
     if parser.bad > len(parser.examples):
         log.warning("%d bad lines skipped in all (the first %d are listed above)",
                     parser.bad, len(parser.examples))

@@ -468,3 +468,44 @@ def test_the_part_a_reader_child_leaves_is_parsed_as_one_parser_would(share, jun
     assert shared  # parts were left to this process
     assert got_state == want_state
     assert got_items == want_items
+
+
+@needs_fork
+@pytest.mark.parametrize("share", ["0.3", "0.5", "0.7"])
+def test_what_a_left_part_holds_is_judged_as_one_parser_would(share, tmp_path, monkeypatch):
+    """Crafted files in 64-byte blocks (the first holds the header alone, so the second is
+    shared): an infinite value before a bad line of another kind (one parser lists them in
+    the order of the lines), a file whose only row or only bad line lies in the left part (no
+    "holds no data lines" from the child, which did not see it), and one that truly holds no
+    data (only blank lines after the header: the replay's verdict, the same sentence)."""
+    from streamcond.errors import InputError
+    from streamcond.io.prefetch import SHARE_ENV
+
+    head = b"t,a,b" + b" " * 58 + b"\n"  # 64 bytes
+    files = {
+        "order": head + b"1e999,0,0\n" + b"2,2,2\n" * 3 + b"x\n" + b"3,3,3\n" * 3,
+        "one_row": head + b"\n1,2,3\n",
+        "one_bad": head + b"\njunk\n",
+    }
+    monkeypatch.setenv(SHARE_ENV, share)
+    for name, data in files.items():
+        path = tmp_path / f"{name}.csv"
+        path.write_bytes(data)
+        want = _parse_all(path, False, 64)
+        got = _parse_all(path, True, 64)
+        assert got[2], name  # a part was left to this process
+        assert got[:2] == want[:2], name
+    from conftest import config_dict
+
+    from streamcond.config import config_from_dict
+    from streamcond.replay import run_replay
+
+    empty = tmp_path / "empty.csv"
+    empty.write_bytes(head + b"\n" * 200)
+    cfg = config_from_dict(config_dict([{"name": "a", "band": {"low": -1.0, "high": 1.0}}],
+                                       columns=["t", "a", "b"]))
+    monkeypatch.setenv("STREAMCOND_CSV_READER", "numpy")
+    for mode in ("off", "process"):
+        monkeypatch.setenv("STREAMCOND_READ_AHEAD", mode)
+        with pytest.raises(InputError, match="holds no data lines"):
+            run_replay(cfg, empty, block_bytes=64)

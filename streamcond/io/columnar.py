@@ -142,7 +142,7 @@ def read_columnar_blocks(
             rows, numbers = rows[valid], numbers[valid]
         res = parser._finite_rows(rows, numbers) if parser.columns else Parsed(rows)
         res.bad += out.bad
-        res.examples = out.examples + res.examples
+        parser.settle(res)
         parser.lines = done_rows = done_rows + n
         total += res.rows.shape[0]
         yield res, int(src.size * done_rows / max(src.rows, 1)), src.size

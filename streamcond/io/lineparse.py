@@ -37,6 +37,7 @@ reader refuses, or that fails the screen, is taken apart line by line.
 
 from __future__ import annotations
 
+import heapq
 import json
 import logging
 import math
@@ -167,6 +168,7 @@ class LineParser:
         #: header lines skipped after the first (a device that restarts and prints it again)
         self.repeated_headers = 0
         self.examples: list[str] = []
+        self._pending: list[tuple[int, str]] = []  # (line, why) until settle
         self.header_line: str | None = None
         #: Reading in a child process for a consumer that would wait for it (the replay sets
         #: it where the numpy reader is slower than the conditioning): the child may leave the
@@ -174,6 +176,7 @@ class LineParser:
         #: fraction of each block to leave, from the measured costs of both sides.
         self.sharing = False
         self.share_of = None
+        self.left = 0  # child side: lines left to the consumer
         self._absorbed: _Absorbed | None = None  # consumer side, once a share came
 
     # -- public -----------------------------------------------------------------------------
@@ -190,7 +193,7 @@ class LineParser:
         cut = data.rfind(b"\n")
         if cut < 0:
             self._tail = tail + data
-            return self._check_tail()
+            return self.settle(self._check_tail())
         if tail or cut + 1 < len(data):
             # one copy of the block (tail + data[:cut + 1] would make two)
             body = b"".join((tail, memoryview(data)[: cut + 1]))
@@ -204,12 +207,12 @@ class LineParser:
             out = self._parse_block(body[:share])
             rest = np.frombuffer(body, np.uint8, offset=share)
             out.share = Share(rest, self.lines + 1)
-            self.lines += body.count(b"\n", share)
+            n_left = body.count(b"\n", share)
+            self.lines += n_left
+            self.left += n_left
         extra = self._check_tail()
-        if extra.bad:
-            out.bad += extra.bad
-            out.examples += extra.examples
-        return out
+        out.bad += extra.bad
+        return self.settle(out)
 
     def feed_lines(self, lines: list[bytes], times: np.ndarray) -> Parsed:
         """Parse complete lines (already split and length-checked, e.g. by the serial framer)
@@ -218,7 +221,8 @@ class LineParser:
         if not lines:
             return self._with_times(self._empty(), times, first)
         body = b"\n".join(lines) + b"\n"
-        return self._with_times(self._parse_block(body), np.asarray(times, np.float64), first)
+        parsed = self.settle(self._parse_block(body))
+        return self._with_times(parsed, np.asarray(times, np.float64), first)
 
     def _with_times(self, p: Parsed, times: np.ndarray, first: int) -> Parsed:
         t = times[p.lines - first] if p.lines.size else np.empty(0)
@@ -234,7 +238,7 @@ class LineParser:
         if self._skip_tail or not tail.strip(b" \t\r"):
             self._skip_tail = False
             return self._empty()
-        return self._parse_block(tail + b"\n")
+        return self.settle(self._parse_block(tail + b"\n"))
 
     @property
     def ncols(self) -> int:
@@ -247,13 +251,38 @@ class LineParser:
     def _note_bad(self, parsed: Parsed, lineno: int, why: str) -> None:
         parsed.bad += 1
         self.bad += 1
+        self._pend(lineno, why)
+
+    def _pend(self, lineno: int, why: str) -> None:
+        """A bad line's message, kept until :meth:`settle` while fewer than MAX_EXAMPLES are
+        kept (the paths of a block find their bad lines in different orders)."""
         if len(self.examples) < MAX_EXAMPLES:
-            msg = f"line {lineno}: {why}"
-            self.examples.append(msg)
-            parsed.examples.append(msg)
+            self._pending.append((lineno, why))
+            if len(self._pending) > 8 * MAX_EXAMPLES:  # only the first ones can be kept
+                self._pending = heapq.nsmallest(MAX_EXAMPLES, self._pending)
+
+    def settle(self, parsed: Parsed) -> Parsed:
+        """The messages of what was just parsed into ``parsed``: in the order of the lines, the
+        first of them up to MAX_EXAMPLES in all — whichever path found them first, and however
+        the stream was cut into blocks."""
+        if not self._pending:
+            parsed.examples = []
+            return parsed
+        self._pending.sort()
+        room = MAX_EXAMPLES - len(self.examples)
+        msgs = [f"line {n}: {why}" for n, why in self._pending[: max(room, 0)]]
+        self._pending = []
+        self.examples += msgs
+        parsed.examples = msgs
+        return parsed
 
     def _too_long(self, n: int) -> bool:
         return self.max_line is not None and n > self.max_line
+
+    @property
+    def absorbed(self) -> bool:
+        """Consumer side: did a reader child leave this parser parts of the stream?"""
+        return self._absorbed is not None
 
     def _share_point(self, body: bytes) -> int | None:
         """Where the part of ``body`` left to the consumer starts (after a line end), or None:
@@ -313,7 +342,7 @@ class LineParser:
         """Parse a left part as this parser would have at its first line, into ``parsed``."""
         lines_after, bad0, rep0 = self.lines, self.bad, self.repeated_headers
         self.lines = share.first_line - 1
-        part = self._parse_block(bytes(share.body))
+        part = self.settle(self._parse_block(bytes(share.body)))
         self.lines = lines_after
         ab.bad += self.bad - bad0
         ab.repeated_headers += self.repeated_headers - rep0
@@ -352,9 +381,7 @@ class LineParser:
                 out.rows = np.empty((0, self.ncols))  # the header may have set the columns
                 return out
         res = self._parse_csv(body)
-        if out.bad:
-            res.bad += out.bad
-            res.examples = out.examples + res.examples
+        res.bad += out.bad
         return res
 
     # -- csv ---------------------------------------------------------------------------------
@@ -475,7 +502,6 @@ class LineParser:
             rows, nums = rows[order], nums[order]
         res = self._finite_rows(rows, nums)
         res.bad += out.bad
-        res.examples = out.examples + res.examples
         return res
 
     def _parse_good(
@@ -540,11 +566,8 @@ class LineParser:
         if fin.all():
             return Parsed(rows, lines=numbers)
         out = Parsed(rows[fin], lines=numbers[fin])
-        for no in numbers[~fin][: MAX_EXAMPLES + 1].tolist():
-            if len(self.examples) < MAX_EXAMPLES:
-                msg = f"line {no}: NaN or infinite number"
-                self.examples.append(msg)
-                out.examples.append(msg)
+        for no in numbers[~fin][:MAX_EXAMPLES].tolist():
+            self._pend(no, "NaN or infinite number")
         nbad = int((~fin).sum())
         out.bad += nbad
         self.bad += nbad
@@ -593,7 +616,7 @@ class LineParser:
             numbers.append(self.lines)
         self._template = tmpl
         arr = np.array(rows, dtype=np.float64).reshape(len(rows), len(cols))
-        return Parsed(arr, out.bad, out.examples, np.asarray(numbers, dtype=np.int64))
+        return Parsed(arr, out.bad, lines=np.asarray(numbers, dtype=np.int64))
 
     def _learn(self, s: bytes, cols: list[str], kv: bool) -> linetemplate.Template | None:
         """The template of a line the careful parser accepted and the template (if any)

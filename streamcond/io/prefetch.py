@@ -238,6 +238,7 @@ def read_in_child(blocks: Iterator[T], parser: object) -> Iterator[T]:
 def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]:
     ended = False
     absorb = getattr(parser, "absorb", None)
+    done = 0
     try:
         yield None  # type: ignore[misc]  # primed by read_in_child: the finally now always runs
         with fh:
@@ -261,7 +262,12 @@ def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]
                     raise data  # type: ignore[misc]
                 t0 = time.perf_counter()
                 yield item  # type: ignore[misc]
-                slots.report_cost(time.perf_counter() - t0)  # the consumer's time per block
+                if isinstance(item, tuple) and len(item) == 3 and isinstance(item[1], int):
+                    # a text block, (parsed, bytes read so far, size): the consumer's time on
+                    # it per byte of the file, for the child's balance
+                    nbytes, done = item[1] - done, item[1]
+                    if nbytes > 0:
+                        slots.report_cost((time.perf_counter() - t0) / nbytes)
     finally:
         fh.close()
         _reap(pid, stop=not ended)
@@ -273,8 +279,9 @@ class _Balance:
     sides take as long per block. With p the child's parse time of a block and c the
     consumer's time on it (conditioning and writing), leaving a fraction f costs the child
     (1 - f)·p and the consumer f·p + c: equal at f = (p - c) / 2p, none when the consumer is the
-    slower side. p is measured here on the bytes parsed, c by the consumer (shared memory);
-    both smoothed over blocks, as the machine's speed moves."""
+    slower side. Both are measured per byte of the file (blocks differ in size: the first is
+    small), p here on the bytes parsed, c by the consumer (shared memory), and smoothed over
+    blocks, as the machine's speed moves."""
 
     #: Weight of the newest measurement in the running figures (an exponential average).
     ALPHA = 0.5
@@ -285,8 +292,6 @@ class _Balance:
     def __init__(self, slots: SharedSlots) -> None:
         self.slots = slots
         self.per_byte: float | None = None  # the child's parse time per byte
-        self.t_last = time.perf_counter()
-        self.bytes_last = 0
 
     def __call__(self, body_bytes: int) -> float:
         """The share of a block of ``body_bytes`` to leave (called before it is parsed)."""
@@ -296,10 +301,10 @@ class _Balance:
                 return float(forced)
             except ValueError:
                 return 0.0
-        c = self.slots.cost()
-        if self.per_byte is None or c is None:
+        c_byte = self.slots.cost()
+        if self.per_byte is None or c_byte is None:
             return 0.0
-        p = self.per_byte * body_bytes
+        p, c = self.per_byte * body_bytes, c_byte * body_bytes
         return min(self.MAX_SHARE, max(0.0, (p - c) / (2.0 * p))) if p > 0 else 0.0
 
     def parsed(self, nbytes: int, seconds: float) -> None:

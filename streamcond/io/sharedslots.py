@@ -31,7 +31,7 @@ class SharedSlots:
         import mmap
 
         # anonymous and shared (a fork keeps it); after the slots, one float64: the consumer's
-        # time per block (see report_cost)
+        # time per byte of a block (see report_cost)
         self.mm = mmap.mmap(-1, SLOTS * SLOT_BYTES + _COST.size)
         self.view = memoryview(self.mm)
         self.free_r, self.free_w = os.pipe()
@@ -100,13 +100,13 @@ class SharedSlots:
     # -- both: the consumer's time per block, for the child's balance (a figure, not a lock:
     # a stale read only shifts the next block's share a little)
     def report_cost(self, seconds: float) -> None:
-        """Consumer: the time it took over the last block."""
+        """Consumer: the time it took over the last block (per byte of it)."""
         old = self.cost()
         new = seconds if old is None else 0.5 * seconds + 0.5 * old
         _COST.pack_into(self.mm, SLOTS * SLOT_BYTES, new)
 
     def cost(self) -> float | None:
-        """The consumer's time per block (smoothed), None before the first."""
+        """The consumer's time per byte of a block (smoothed), None before the first."""
         v = _COST.unpack_from(self.mm, SLOTS * SLOT_BYTES)[0]
         return v if v > 0 else None
 
