@@ -264,9 +264,10 @@ def _from_child(fh, pid: int, parser: object, slots: SharedSlots) -> Iterator[T]
                 yield item  # type: ignore[misc]
                 if isinstance(item, tuple) and len(item) == 3 and isinstance(item[1], int):
                     # a text block, (parsed, bytes read so far, size): the consumer's time on
-                    # it per byte of the file, for the child's balance
-                    nbytes, done = item[1] - done, item[1]
-                    if nbytes > 0:
+                    # it per byte of the file, for the child's balance — from the second on
+                    # (the first carries the consumer's start: its pipeline is built then)
+                    nbytes, first, done = item[1] - done, done == 0, item[1]
+                    if nbytes > 0 and not first:
                         slots.report_cost((time.perf_counter() - t0) / nbytes)
     finally:
         fh.close()
@@ -285,6 +286,9 @@ class _Balance:
 
     #: Weight of the newest measurement in the running figures (an exponential average).
     ALPHA = 0.5
+    #: The share before the consumer's first figure: the balance measured on the benchmark
+    #: file (4 channels, a lowpass each: about a third), right within a block or two elsewhere.
+    FIRST_GUESS = 1.0 / 3.0
     #: Never more than this share: the consumer parses with the same reader, so beyond half
     #: it would become the slower side whatever c is.
     MAX_SHARE = 0.5
@@ -302,8 +306,10 @@ class _Balance:
             except ValueError:
                 return 0.0
         c_byte = self.slots.cost()
-        if self.per_byte is None or c_byte is None:
+        if self.per_byte is None:
             return 0.0
+        if c_byte is None:  # the consumer has not measured a block yet (its first is its start)
+            return self.FIRST_GUESS
         p, c = self.per_byte * body_bytes, c_byte * body_bytes
         return min(self.MAX_SHARE, max(0.0, (p - c) / (2.0 * p))) if p > 0 else 0.0
 
