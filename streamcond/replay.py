@@ -60,13 +60,15 @@ def check_columns(cfg: Config, columns: list[str]) -> None:
 
 def open_recording(
     cfg: Config, recording: str | Path, block_bytes: int = DEFAULT_BLOCK_BYTES,
-    reader: str | None = None,
+    reader: str | None = None, share: bool = False,
 ) -> tuple[LineParser, Iterable[tuple[Any, int, int]], bool, bool]:
     """The parser and the block iterator for a recording or a capture (text, Parquet or Arrow
     IPC), whether the rows carry host receive times as their sample time (a capture read
     with a config that has no time column and no fixed rate), and whether the recording is a
     capture (its rows then end with the host receive time). ``reader`` picks the CSV block
-    reader (``numpy`` or ``pyarrow``; default: the fastest installed)."""
+    reader (``numpy`` or ``pyarrow``; default: the fastest installed). ``share``: a reader child
+    may leave parts of CSV blocks to this process (:class:`streamcond.io.lineparse.Share`);
+    only for a caller that gives the end-of-file verdict itself, as :func:`run_replays` does."""
     from .io.recording import kind_of
 
     src = cfg.source
@@ -101,7 +103,8 @@ def open_recording(
         # numpy's reader parses a CSV block in about twice the time the block's conditioning
         # takes: the child then leaves the last part of each block for this process to parse
         # (the share that evens the two sides out, measured as it goes)
-        parser.sharing = fn is read_blocks and parser.fmt == "csv" and parser.reader == "numpy"
+        parser.sharing = (share and fn is read_blocks and parser.fmt == "csv"
+                          and parser.reader == "numpy")
         blocks = prefetch.read_job_in_child(fn, args, parser, str(recording))
     else:
         blocks = fn(*args)
@@ -188,7 +191,8 @@ def run_replays(
         raise ValueError("run_replays needs configs that read the recording the same way")
     for cfg in cfgs:
         validate(cfg, files=False)  # a replay opens no MQTT files
-    parser, blocks, host_time, capture = open_recording(cfgs[0], recording, block_bytes)
+    parser, blocks, host_time, capture = open_recording(cfgs[0], recording, block_bytes,
+                                                        share=True)
     try:
         # every capture's rows end with the host receive time (see open_recording)
         host_column = host_time or capture
@@ -288,7 +292,9 @@ def _drive(
                 for msg in parsed.examples:
                     log.warning("bad input skipped: %s", msg)
             if lead.pipe is None:
-                if parser.columns is None:
+                # (a reader thread ahead may have found the header already: an item parsed
+                # before it has no columns, so the pipeline starts at the first rows)
+                if parser.columns is None or parsed.rows.shape[0] == 0:
                     continue
                 for run in runs:
                     run.start(parser.columns)

@@ -509,3 +509,46 @@ def test_what_a_left_part_holds_is_judged_as_one_parser_would(share, tmp_path, m
         monkeypatch.setenv("STREAMCOND_READ_AHEAD", mode)
         with pytest.raises(InputError, match="holds no data lines"):
             run_replay(cfg, empty, block_bytes=64)
+
+
+def test_a_reader_thread_ahead_of_the_header_does_not_start_the_pipeline_early(tmp_path,
+                                                                              monkeypatch):
+    """Read ahead in a thread, a CSV whose columns come from its header, 30-byte blocks: the
+    thread finds the header while the replay still holds earlier items without columns; those
+    must not reach the pipeline (it raised "rows must be (n, 3)")."""
+    from fuzz_lines import config
+
+    from streamcond.config import load_config
+    from streamcond.replay import run_replay
+
+    cfg_path = tmp_path / "c.toml"
+    cfg_path.write_text(config("csv").replace('columns = ["t", "a", "b"]\n', ""))
+    cfg = load_config(cfg_path)
+    rec = tmp_path / "late.csv"
+    rec.write_bytes(b"t,a,b" + b" " * 58 + b"\n" + b"\n" * 50 + b"1,2,3\n")
+    monkeypatch.setenv("STREAMCOND_READ_AHEAD", "off")
+    want = run_replay(cfg, rec, block_bytes=30, keep_records=True).records
+    monkeypatch.setenv("STREAMCOND_READ_AHEAD", "thread")
+    for _ in range(10):  # the race needed no luck: 30 of 30 runs failed before
+        got = run_replay(cfg, rec, block_bytes=30, keep_records=True).records
+        assert [r for r in got if r["kind"] != "summary"] == [
+            r for r in want if r["kind"] != "summary"]
+
+
+@needs_fork
+def test_convert_reads_without_a_share_and_keeps_the_no_data_verdict(tmp_path):
+    """Only the replay gives the end-of-file verdict itself; convert and tune read without a
+    share, so a file of blank lines is "holds no data lines" through a reader child too."""
+    from fuzz_lines import config
+
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(config("csv"))
+    blank = tmp_path / "blank.csv"
+    blank.write_bytes(b"t,a,b\n" + b"\n" * 400_000)
+    env = {**os.environ, "STREAMCOND_READ_AHEAD": "process", "STREAMCOND_CSV_READER": "numpy",
+           "STREAMCOND_SHARE": "0.5"}
+    for args in (["convert", "-c", str(cfg), str(blank), "-o", str(tmp_path / "x.parquet")],
+                 ["replay", str(blank), "-c", str(cfg), "--events", str(tmp_path / "e.jsonl")]):
+        r = subprocess.run([sys.executable, "-m", "streamcond", *args], capture_output=True,
+                           text=True, env=env, timeout=120)
+        assert r.returncode == 2 and "holds no data lines" in r.stderr, (args[0], r.stderr)

@@ -180,3 +180,24 @@ def test_a_channel_in_tiny_units_gets_its_stats_not_a_division_by_zero():
         assert r["noise_sigma"] == pytest.approx(1e-170, rel=0.05)
         assert r["margin_sigma"] == pytest.approx(1.0 / r["noise_sigma"])
         assert r["predicted_false_rate_per_hour"] == 0.0
+
+
+def test_rice_rate_where_two_sigma_squared_is_subnormal_follows_the_margin():
+    # σ̂ ≈ 2e-162: 2σ² ≈ 8e-324 is a subnormal double (IEEE 754 binary64: normal from about
+    # 2.2e-308), where h²/2σ² keeps few bits; the rate must be Rice's ν0·exp(−m²/2)·3600 for
+    # the record's own margin m = h/σ.
+    t = np.arange(0, 30, 0.01)
+    x = 2e-162 * np.random.default_rng(0).standard_normal(t.size)
+    assert 0.0 < 2.0 * (2e-162) ** 2 < 2.2250738585072014e-308
+    c = {"source": {"kind": "file", "time_column": "t", "sample_rate_hz": 100.0},
+         "channel": [{"name": "x", "band": {"low": -5e-162, "high": 5e-162}}],
+         "stats": {"interval_s": 10.0, "noise_window_s": 5.0, "noise_refresh_s": 5.0}}
+    p = Pipeline(config_from_dict(c), ["t", "x"])
+    stats = [r for r in p.process(np.column_stack([t, x])) + p.finish()
+             if r["kind"] == "stats" and r["noise_sigma"] is not None]
+    assert stats
+    for r in stats:
+        m = r["margin_sigma"]
+        assert 1.0 < m < 5.0
+        want = r["nu0_hz"] * math.exp(-0.5 * m * m) * 3600.0
+        assert r["predicted_false_rate_per_hour"] == pytest.approx(want, rel=1e-12)

@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import copy
 import math
+import sys
 from collections import deque
 from typing import Any
 
@@ -169,10 +170,12 @@ class ChannelStats:
         trusted = self.reliable is True
         margin = half / sig if trusted and sig > 0 and math.isfinite(half) else math.nan
         if trusted and sig > 0 and nu0 >= 0 and math.isfinite(half):
-            # Rice: ν0·exp(−h²/2σ²); by the margin h/σ where 2σ² underflows to 0 (σ below about
-            # 1e-154: a channel in tiny units, or a tiny gain), which would divide by zero
-            two_var = 2.0 * sig * sig
-            z = (half * half) / two_var if two_var > 0 else 0.5 * margin * margin
+            # Rice: ν0·exp(−h²/2σ²); by the margin h/σ where h² or 2σ² leaves the normal doubles
+            # (σ below about 1e-154: a channel in tiny units, or a tiny gain), which would divide
+            # by zero or lose the quotient's precision
+            two_var, hh = 2.0 * sig * sig, half * half
+            normal = two_var >= sys.float_info.min and (hh >= sys.float_info.min or hh == 0.0)
+            z = hh / two_var if normal else 0.5 * margin * margin
             rate = nu0 * math.exp(-z) * 3600.0
         else:
             rate = math.nan
