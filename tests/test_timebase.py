@@ -285,3 +285,36 @@ def test_period_is_numpys_median_of_the_first_steps(n):
     tb = Timebase(time_scale=1.0)
     assert tb.estimate(t, final=True)
     assert tb.period == float(np.median(np.diff(t)[:ESTIMATE_N]))
+
+
+def test_a_gaps_wall_clock_stamp_does_not_depend_on_the_block_split():
+    # Rows with host receive times (a capture): a gap starts at the last sample kept before it
+    # (its t), so its utc is that sample's host time — once taken from the sample after it,
+    # which moved with the split, and missing in blocks of one row (the dropped row's block
+    # keeps no sample). One sample goes back in time (out of order), one jumps ahead.
+    from streamcond import records
+    from streamcond.io.lineparse import HOST_T
+
+    n = 400
+    t = np.arange(n, dtype=float)
+    t[180] -= 3.0  # out of order
+    t[300:] += 50.0  # a jump of 50 periods
+    host = 1.7e9 + np.arange(n) * 0.001 + 0.0005 * (np.arange(n) % 3)  # jittered arrivals
+    rows = np.column_stack([t, np.sin(t / 40.0), host])
+    c = {"source": {"kind": "file", "time_column": "t", "time_scale": 0.001,
+                    "sample_rate_hz": 1000.0},
+         "channel": [{"name": "a", "band": {"low": -0.3, "high": 0.3}}]}
+
+    def run(cuts):
+        p = Pipeline(config_from_dict(c), ["t", "a", HOST_T])
+        out, a = [], 0
+        for b in list(cuts) + [n]:
+            out += p.process(rows[a:b])
+            a = b
+        return [records.to_json(r) for r in out + p.finish()]
+
+    whole = run([])
+    gaps = [g for g in whole if '"kind":"gap"' in g]
+    assert len(gaps) == 2 and all('"utc"' in g for g in gaps)
+    for cuts in ([180], [181], [300], [299], range(1, n), range(7, n, 7)):
+        assert run(cuts) == whole, list(cuts)[:3]

@@ -148,10 +148,16 @@ class Pipeline:
         self.samples += int(t.size)
         if len(tagged) > 1:
             tagged.sort(key=lambda r: (r[0], r[1], r[2]))
-        if self.host_col is not None and t.size:
+        if self.host_col is not None:
             host = rows[:, self.host_col]
-            self.last_host_t = float(host[-1])
-            _stamp(tagged, t, host, base)
+            # A gap starts at the last sample kept before it (its t): its utc is that sample's
+            # host time, in this block or the one before — whichever block holds the dropped
+            # or jumping sample (stamped by the next sample, it moved with the split).
+            for k, rec in gaps:
+                records.with_utc(rec, float(host[k - 1]) if k >= 1 else self.last_host_t)
+            if t.size:
+                self.last_host_t = float(host[-1])
+                _stamp(tagged, t, host, base)
         return [r[3] for r in tagged]
 
     def _quiet_channels(self, t: np.ndarray, rows: np.ndarray) -> list[bool]:
@@ -362,6 +368,8 @@ def _stamp(tagged: list[tuple[int, int, int, dict[str, Any]]], t: np.ndarray, ho
     tagged with global sample indices; ``base`` is the block's first)."""
     last = t.size - 1
     for i, _, _, rec in tagged:
+        if "utc" in rec:  # a gap, stamped by its own sample
+            continue
         k = min(max(i - base, 0), last)
         rt = rec.get("t")
         h = float(host[k])
