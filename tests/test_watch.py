@@ -57,6 +57,20 @@ def test_edges_in_the_last_minute_and_the_chatter_criterion():
     assert rows["a"].level == "HIGH"
 
 
+def test_a_channel_fault_shows_until_its_end_record_even_as_values_come():
+    # port mode: the pipeline's fault record comes, then that read's values (NaN at the fault
+    # samples); the fault shows until the record of its end, not only until the next values
+    m = WatchModel(small_cfg(), "port")
+    m.on_record({"kind": "fault", "channel": "a", "t": 1.0, "state": "start", "value": 1e308,
+                 "reason": "raw value 1e+308 lies beyond ±1e+150"}, 1.0)
+    m.on_values("a", np.array([1.2, np.nan]), 1.0)
+    assert "1e+150" in {r.name: r for r in m.snapshot(1.5).rows}["a"].fault
+    m.on_record({"kind": "fault", "channel": "a", "t": 2.0, "state": "end", "value": 1.1,
+                 "duration_s": 1.0}, 2.0)
+    m.on_values("a", np.array([1.1]), 2.0)
+    assert {r.name: r for r in m.snapshot(2.5).rows}["a"].fault is None
+
+
 def test_stats_give_band_sigma_margin_and_the_adaptive_band_waits_for_them():
     m = WatchModel(small_cfg(), "mqtt")
     rows = {r.name: r for r in m.snapshot(0.0).rows}

@@ -201,8 +201,9 @@ class WatchModel:
             cv.reliable = None if rel is None else bool(rel)
             cv.chattering_stats = bool(rec.get("chattering"))
         elif kind == "fault":
-            if cv is not None:
-                cv.fault = str(rec.get("reason") or "fault")
+            if cv is not None:  # the fault's start names it; its end clears it
+                ended = rec.get("state") == "end"
+                cv.fault = None if ended else str(rec.get("reason") or "fault")
             else:
                 self.notes.append(f"source fault: {rec.get('reason')} {rec.get('detail') or ''}".strip())
         elif kind == "gap":
@@ -231,7 +232,6 @@ class WatchModel:
             return
         cv.value, cv.value_at = float(values[-1]), now
         cv.trace.extend(values[-TRACE_POINTS:].tolist())
-        cv.fault = None
 
     # -- reading ---------------------------------------------------------------------------------
     def _rate(self, now: float) -> float | None:
