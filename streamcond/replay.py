@@ -6,6 +6,7 @@ JSON-lines writer, plus pacing (``--speed``), progress and the golden-file compa
 
 from __future__ import annotations
 
+import copy
 import logging
 import os
 import time
@@ -106,10 +107,12 @@ def open_recording(
         parser.sharing = (share and fn is read_blocks and parser.fmt == "csv"
                           and parser.reader == "numpy")
         blocks = prefetch.read_job_in_child(fn, args, parser, str(recording))
+    elif how == "thread":
+        # the thread drives a parser of its own; this one takes its state with each block
+        own = copy.deepcopy(parser)
+        blocks = prefetch.read_ahead(iter(fn(args[0], own, *args[2:])), sync=(own, parser))
     else:
         blocks = fn(*args)
-        if how == "thread":
-            blocks = prefetch.read_ahead(iter(blocks))
     return parser, blocks, host_time, capture
 
 
@@ -292,9 +295,7 @@ def _drive(
                 for msg in parsed.examples:
                     log.warning("bad input skipped: %s", msg)
             if lead.pipe is None:
-                # (a reader thread ahead may have found the header already: an item parsed
-                # before it has no columns, so the pipeline starts at the first rows)
-                if parser.columns is None or parsed.rows.shape[0] == 0:
+                if parser.columns is None:
                     continue
                 for run in runs:
                     run.start(parser.columns)

@@ -16,6 +16,7 @@ within it the squares (below 1e300) and their sums over any window stay finite.
 from __future__ import annotations
 
 import math
+
 import numpy as np
 
 from ..config import Fault

@@ -61,12 +61,16 @@ class _Failed:
         self.exc = exc
 
 
-def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
+def read_ahead(blocks: Iterator[T], depth: int = DEPTH,
+               sync: tuple[object, object] | None = None) -> Iterator[T]:
     """Yield the items of ``blocks``, produced by a thread that stays ``depth`` items ahead.
 
     The thread starts now, so the first block is read while the caller gets ready. Closing the
     returned generator (or an exception in the consumer, or dropping it) stops the thread at its
-    next item and closes ``blocks``.
+    next item and closes ``blocks``. ``sync = (source, target)``: ``blocks`` drives the parser
+    ``source`` in the thread, and ``target`` takes its state (:data:`SYNCED`) as of each item
+    when the consumer gets that item — as from a reader child — never while the thread is a
+    block further on.
     """
     q: queue.Queue = queue.Queue(maxsize=depth)
     stop = threading.Event()
@@ -80,15 +84,21 @@ def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
                 continue
         return False
 
+    def state() -> dict | None:
+        if sync is None:
+            return None
+        return {k: (list(v) if isinstance(v, list) else v)
+                for k in SYNCED for v in (getattr(sync[0], k),)}
+
     def run() -> None:
         try:
             for item in blocks:
-                if not put(item):
+                if not put((item, state())):
                     break
             else:
-                put(_END)
+                put((_END, state()))
         except BaseException as e:  # handed to the consumer, raised there in order
-            put(_Failed(e))
+            put((_Failed(e), state()))
         finally:
             close = getattr(blocks, "close", None)
             if close is not None:
@@ -104,7 +114,10 @@ def read_ahead(blocks: Iterator[T], depth: int = DEPTH) -> Iterator[T]:
         try:
             yield None  # type: ignore[misc]  # primed below: the finally now always runs
             while True:
-                item = q.get()
+                item, st = q.get()
+                if st is not None:
+                    for k, v in st.items():
+                        setattr(sync[1], k, v)  # type: ignore[index]
                 if item is _END:
                     return
                 if isinstance(item, _Failed):
